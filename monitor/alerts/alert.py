@@ -1,0 +1,54 @@
+"""The Alert value: one thing people must be told, with a dedup key so it is told once."""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from typing import Any
+
+ALERT_KINDS = (
+    "hold",              # a lot's mean is shown to have moved off target
+    "review",            # a lot needs a person: too small, non-normal, no rule for the product, ...
+    "file-rejected",     # an export could not be used; it was quarantined
+    "config-rejected",   # a config / rule / template edit was bad; the last good version stays in force
+    "file-duplicate",    # the same content arrived again; not counted twice
+    "file-revised",      # a known path arrived with different content
+    "delivery-failing",  # a channel gave up on an alert (5xx / dead)
+    "daemon-started",
+    "daemon-stopped",
+    "digest",            # the daily summary
+)
+
+
+@dataclass(frozen=True)
+class Alert:
+    """One alert. ``data`` is JSON-safe; for hold/review it is ``Verdict.to_json()`` plus context.
+
+    ``dedup_key`` is stable across restarts and re-processing (e.g. ``"hold|L2|OAT-500|A1234|<rule_version>"``):
+    the outbox keeps at most one alert per key and channel.
+    """
+
+    kind: str
+    dedup_key: str
+    created_at: str                      # ISO 8601 UTC, e.g. "2026-12-01T22:05:00+00:00"
+    data: dict[str, Any] = field(default_factory=dict)
+    line: str = ""
+    product: str = ""
+    lot: str = ""
+
+    def __post_init__(self) -> None:
+        if self.kind not in ALERT_KINDS:
+            raise ValueError(f"alert kind {self.kind!r} must be one of {', '.join(ALERT_KINDS)}")
+
+    def to_json(self) -> dict[str, Any]:
+        return {"kind": self.kind, "dedup_key": self.dedup_key, "created_at": self.created_at,
+                "line": self.line, "product": self.product, "lot": self.lot, **{"data": self.data}}
+
+    def dumps(self) -> str:
+        return json.dumps(self.to_json(), sort_keys=True, ensure_ascii=False, allow_nan=False)
+
+    @classmethod
+    def from_json(cls, obj: dict[str, Any]) -> "Alert":
+        return cls(kind=obj["kind"], dedup_key=obj["dedup_key"], created_at=obj["created_at"],
+                   data=obj.get("data", {}), line=obj.get("line", ""), product=obj.get("product", ""),
+                   lot=obj.get("lot", ""))

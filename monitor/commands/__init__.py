@@ -1,0 +1,1 @@
+"""One module per `lotwarden` sub-command: ``register(subparsers)`` and ``run(args) -> int``."""

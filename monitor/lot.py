@@ -1,0 +1,171 @@
+"""Value objects that flow through the core: a lot's data in, a verdict out.
+
+``LotData`` is what the reader (``lotwarden check``) or the state store (daemon) hands the statistics
+engine; ``Verdict`` is what ``monitor.engine.evaluate`` returns. Both are frozen. ``Verdict.to_json()``
+is the one JSON shape used by ``check --format json``, the alert log and alert templates.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+VERDICTS = ("pass", "hold", "review")
+
+
+@dataclass(frozen=True)
+class LotKey:
+    """Identity of a lot: one lot code on one line for one product ("" where the export has no column)."""
+
+    line: str
+    product: str
+    lot: str
+
+
+@dataclass(frozen=True)
+class LotSummary:
+    """A lot known only by its summary statistics (weighers that export lot, n, mean, sd)."""
+
+    n: int
+    mean: float
+    sd: float
+
+
+@dataclass(frozen=True, eq=False)
+class LotData:
+    """One lot's measurements, already in the rule's unit, in arrival order.
+
+    Exactly one of ``values`` (float64 array) and ``summary`` is set. ``heads`` (same length as
+    ``values``, or None) names the filler head / valve of each value.
+    """
+
+    key: LotKey
+    values: np.ndarray | None = None
+    summary: LotSummary | None = None
+    heads: tuple[str, ...] | None = None
+    files: tuple[str, ...] = ()
+    unit: str = "g"
+
+    def __post_init__(self) -> None:
+        if (self.values is None) == (self.summary is None):
+            raise ValueError("LotData needs exactly one of values and summary")
+        if self.values is not None:
+            arr = np.asarray(self.values, dtype=np.float64)
+            arr.setflags(write=False)
+            object.__setattr__(self, "values", arr)
+            if self.heads is not None and len(self.heads) != arr.shape[0]:
+                raise ValueError("heads must be as long as values")
+
+
+@dataclass(frozen=True)
+class NormalityResult:
+    """Outcome of the normality gate. ``passed`` is None when it was not assessed (reason says why)."""
+
+    test: str | None
+    statistic: float | None
+    p_value: float | None
+    passed: bool | None
+    note: str = ""
+
+    def to_json(self) -> dict[str, Any]:
+        return {"test": self.test, "statistic": _num(self.statistic), "p_value": _num(self.p_value),
+                "passed": self.passed, "note": self.note}
+
+
+@dataclass(frozen=True)
+class HeadSummary:
+    """Per filler head: n, mean, sd and the offset of its mean from target (which head drifted)."""
+
+    head: str
+    n: int
+    mean: float
+    sd: float | None
+    offset: float
+    p_value: float | None = None
+
+    def to_json(self) -> dict[str, Any]:
+        return {"head": self.head, "n": self.n, "mean": _num(self.mean), "sd": _num(self.sd),
+                "offset": _num(self.offset), "p_value": _num(self.p_value)}
+
+
+@dataclass(frozen=True)
+class Verdict:
+    """The engine's decision on one lot, with every number a reader needs to check it.
+
+    ``verdict`` is "hold" (the mean is shown to have moved off target in the direction the rule
+    tests), "pass" (no shift shown) or "review" (the test cannot be trusted here; ``reason`` says why).
+    """
+
+    key: LotKey
+    rule: str
+    rule_version: str
+    n: int
+    mean: float | None
+    sd: float | None
+    target: float
+    unit: str
+    alternative: str
+    alpha: float
+    test: str | None               # "t" | "z" | "wilcoxon" | None (no test ran)
+    statistic: float | None
+    df: float | None
+    p_value: float | None
+    critical_value: float | None
+    se: float | None
+    ci_low: float | None           # None = open end of a one-sided interval, or no interval
+    ci_high: float | None
+    effect_size: float | None      # (mean - target) / sd  (Cohen's d; with known_sd, / known_sd)
+    normality: NormalityResult
+    power: float | None            # power against the rule's shift_of_interest at this n; None without one
+    n_for_power: int | None        # smallest n reaching the rule's target_power against that shift
+    verdict: str
+    reason: str
+    excluded: int = 0              # non-finite values left out by the engine
+    heads: tuple[HeadSummary, ...] = ()
+    files: tuple[str, ...] = ()
+
+    def to_json(self) -> dict[str, Any]:
+        """The documented JSON object (``check --format json``, alert log, templates)."""
+        return {
+            "file": self.files[0] if self.files else None,
+            "files": list(self.files),
+            "line": self.key.line,
+            "product": self.key.product,
+            "lot": self.key.lot,
+            "rule": self.rule,
+            "rule_version": self.rule_version,
+            "n": self.n,
+            "mean": _num(self.mean),
+            "sd": _num(self.sd),
+            "target": _num(self.target),
+            "unit": self.unit,
+            "alternative": self.alternative,
+            "alpha": self.alpha,
+            "test": self.test,
+            "statistic": _num(self.statistic),
+            "df": _num(self.df),
+            "p_value": _num(self.p_value),
+            "critical_value": _num(self.critical_value),
+            "se": _num(self.se),
+            "ci_low": _num(self.ci_low),
+            "ci_high": _num(self.ci_high),
+            "effect_size": _num(self.effect_size),
+            "normality": self.normality.to_json(),
+            "power": _num(self.power),
+            "n_for_power": self.n_for_power,
+            "verdict": self.verdict,
+            "reason": self.reason,
+            "excluded": self.excluded,
+            "heads": [h.to_json() for h in self.heads],
+        }
+
+
+def _num(x: float | None) -> float | None:
+    """JSON-safe number: None for None/NaN; +-inf kept as None too (JSON has no infinities)."""
+    if x is None:
+        return None
+    x = float(x)
+    return x if math.isfinite(x) else None

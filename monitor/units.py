@@ -1,0 +1,57 @@
+"""Units of fill quantity (mass and volume) and conversion between them."""
+
+from __future__ import annotations
+
+import numpy as np
+
+# canonical name -> (kind, factor to the kind's base unit: g for mass, mL for volume)
+# 1 oz (avoirdupois) = 28.349523125 g and 1 US fl oz = 29.5735295625 mL (NIST SP 811, appendix B).
+UNITS: dict[str, tuple[str, float]] = {
+    "mg": ("mass", 1e-3),
+    "g": ("mass", 1.0),
+    "kg": ("mass", 1e3),
+    "oz": ("mass", 28.349523125),
+    "mL": ("volume", 1.0),
+    "L": ("volume", 1e3),
+    "fl oz": ("volume", 29.5735295625),
+}
+
+_ALIASES = {
+    "mg": "mg", "g": "g", "gram": "g", "grams": "g", "kg": "kg",
+    "oz": "oz", "ml": "mL", "l": "L", "litre": "L", "liter": "L",
+    "fl oz": "fl oz", "floz": "fl oz", "fl_oz": "fl oz", "fl.oz": "fl oz", "fl. oz": "fl oz",
+}
+
+ALLOWED = ", ".join(UNITS)
+
+
+def canonical_unit(text: str) -> str | None:
+    """Return the canonical spelling of a unit (``"ML"`` -> ``"mL"``), or None if unknown."""
+    key = " ".join(str(text).strip().split()).lower()
+    return _ALIASES.get(key)
+
+
+def conversion_factor(src: str, dst: str, density: float | None = None) -> float:
+    """Factor f such that value_in_dst = value_in_src * f.
+
+    Mass <-> volume needs ``density`` in g/mL; without it a ValueError names what is missing.
+    """
+    s, d = canonical_unit(src), canonical_unit(dst)
+    if s is None or d is None:
+        bad = src if s is None else dst
+        raise ValueError(f"unknown unit {bad!r}; allowed: {ALLOWED}")
+    (skind, sf), (dkind, df) = UNITS[s], UNITS[d]
+    if skind == dkind:
+        return sf / df
+    if density is None or not (density > 0):
+        raise ValueError(f"converting {s} to {d} needs a density in g/mL (got {density!r})")
+    # mass -> volume: g / (g/mL) = mL ; volume -> mass: mL * (g/mL) = g
+    base = sf / density if skind == "mass" else sf * density
+    return base / df
+
+
+def convert(values: np.ndarray, src: str, dst: str, density: float | None = None) -> np.ndarray:
+    """Convert an array of quantities from unit ``src`` to ``dst``."""
+    f = conversion_factor(src, dst, density)
+    arr = np.asarray(values, dtype=np.float64)
+    return arr if f == 1.0 else arr * f
