@@ -1,0 +1,14 @@
+"""Project-wide test fixtures."""
+
+import sys
+from pathlib import Path
+
+import pytest
+
+REPO = Path(__file__).resolve().parent.parent
+SHARED = REPO.parent / "shared"
+
+
+@pytest.fixture
+def repo_root() -> Path:
+    return REPO
