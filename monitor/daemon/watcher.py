@@ -1,0 +1,262 @@
+"""Finds finished export files in the drop folder: name filter, settle tracker, watchdog observer, scans.
+
+Every file-system event is only a *hint* that puts a path on the candidate list; whether a file is
+finished is decided by :class:`SettleTracker` (renamed into place, a marker file, or size + mtime + inode
+unchanged across two looks spanning ``settle_seconds``). The observer watches one folder, not recursively,
+so the archive and quarantine folders may live inside it.
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import logging
+import os
+import threading
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable, Iterable
+
+from watchdog.events import FileSystemEvent, FileSystemEventHandler
+from watchdog.observers import Observer
+from watchdog.observers.polling import PollingObserver
+
+log = logging.getLogger("lotwarden.watcher")
+
+# Names a writer uses while a file is not finished yet (common practice, no source).
+TEMP_PATTERNS: tuple[str, ...] = ("*.tmp", "*.temp", "*.part", "*.partial", "*.crdownload", "*.swp",
+                                  "*~", "~*", "*.lock", "*.filepart")
+REASON_SUFFIX = ".reason.txt"
+
+StatFn = Callable[[str], os.stat_result]
+ClockFn = Callable[[], float]
+HintFn = Callable[[Path, bool], None]
+
+
+@dataclass(frozen=True)
+class NameFilter:
+    """Which file names in the drop folder are exports, matched with fnmatch on the name alone.
+
+    ``include`` patterns a name must match (any), ``ignore`` patterns it must not match; hidden names,
+    temporary names, quarantine reason files and marker files are never exports.
+    """
+
+    include: tuple[str, ...] = ("*",)
+    ignore: tuple[str, ...] = ()
+    marker_suffixes: tuple[str, ...] = ()
+
+    def accepts(self, name: str) -> bool:
+        """True if ``name`` (a bare file name) is an export the daemon should take."""
+        if not name or name.startswith("."):
+            return False
+        low = name.lower()
+        if low.endswith(REASON_SUFFIX) or any(s and low.endswith(s.lower()) for s in self.marker_suffixes):
+            return False
+        if any(fnmatch.fnmatch(low, p.lower()) for p in TEMP_PATTERNS + self.ignore):
+            return False
+        return any(fnmatch.fnmatch(low, p.lower()) for p in self.include)
+
+    def export_for(self, path: Path) -> Path | None:
+        """The export a hint about ``path`` concerns: itself, the data file of a marker, or None."""
+        name = path.name
+        for suffix in self.marker_suffixes:
+            if suffix and name.lower().endswith(suffix.lower()) and len(name) > len(suffix):
+                data = path.with_name(name[: -len(suffix)])
+                return data if self.accepts(data.name) else None
+        return path if self.accepts(name) else None
+
+
+def scan(folder: Path, names: NameFilter) -> list[Path]:
+    """Every regular file directly in ``folder`` whose name passes ``names``, oldest mtime first."""
+    found: list[tuple[float, str, Path]] = []
+    try:
+        with os.scandir(folder) as it:
+            for entry in it:
+                try:
+                    if entry.is_file(follow_symlinks=False) and names.accepts(entry.name):
+                        found.append((entry.stat(follow_symlinks=False).st_mtime, entry.name, Path(entry.path)))
+                except OSError:  # vanished between listing and stat: the next scan or event sees it
+                    continue
+    except FileNotFoundError:
+        log.error("drop folder %s does not exist", folder)
+        return []
+    found.sort()
+    return [p for _, _, p in found]
+
+
+@dataclass
+class _Candidate:
+    signature: tuple[int, int, int] | None = None   # (size, mtime_ns, inode)
+    stable_since: float = 0.0
+    looks: int = 0
+    moved: bool = False
+
+
+class SettleTracker:
+    """Candidate paths → finished paths. Pure apart from the ``stat`` and ``clock`` it is given.
+
+    A candidate is finished when its (size, mtime, inode) is unchanged across at least two looks that
+    span ``settle_seconds``; one stable look is enough after a rename into the folder (``moved=True``);
+    when ``marker_for(path)`` names a suffix, the marker file's existence is the only signal.
+    Thread-safe: hints come from the observer thread, looks from the main loop.
+    """
+
+    def __init__(self, settle_seconds: float, *, stat: StatFn = os.stat, clock: ClockFn = time.monotonic,
+                 marker_for: Callable[[Path], str | None] | None = None) -> None:
+        self.settle_seconds = float(settle_seconds)
+        self._stat = stat
+        self._clock = clock
+        self._marker_for = marker_for or (lambda p: None)
+        self._candidates: dict[Path, _Candidate] = {}
+        self._lock = threading.Lock()
+
+    def hint(self, path: Path, moved: bool = False) -> None:
+        """Put ``path`` on the candidate list (again); ``moved`` says it was renamed into the folder."""
+        with self._lock:
+            cand = self._candidates.setdefault(Path(path), _Candidate())
+            cand.moved = cand.moved or moved
+
+    def hint_many(self, paths: Iterable[Path]) -> None:
+        for p in paths:
+            self.hint(p)
+
+    def forget(self, path: Path) -> None:
+        """Drop ``path`` from the candidates (it was taken, or moved away)."""
+        with self._lock:
+            self._candidates.pop(Path(path), None)
+
+    def pending(self) -> list[Path]:
+        with self._lock:
+            return list(self._candidates)
+
+    def __len__(self) -> int:
+        with self._lock:
+            return len(self._candidates)
+
+    def look(self) -> list[Path]:
+        """Stat every candidate once; return (and forget) those now finished, in hint order."""
+        now = self._clock()
+        with self._lock:
+            items = list(self._candidates.items())
+        finished: list[Path] = []
+        gone: list[Path] = []
+        for path, cand in items:
+            state = self._look_one(path, cand, now)
+            if state == "finished":
+                finished.append(path)
+            elif state == "gone":
+                gone.append(path)
+        with self._lock:
+            for p in finished + gone:
+                self._candidates.pop(p, None)
+        return finished
+
+    def _look_one(self, path: Path, cand: _Candidate, now: float) -> str:
+        try:
+            st = self._stat(str(path))
+        except FileNotFoundError:
+            return "gone"  # renamed or removed by the writer: a later event or scan brings the new name
+        except OSError as exc:
+            log.warning("cannot stat %s: %s; will look again", path, exc)
+            return "waiting"
+        suffix = self._marker_for(path)
+        if suffix:
+            try:
+                self._stat(str(path) + suffix)
+            except OSError:
+                return "waiting"
+            return "finished"
+        sig = (int(st.st_size), int(st.st_mtime_ns), int(st.st_ino))
+        if sig != cand.signature:
+            first = cand.signature is None
+            cand.signature, cand.stable_since, cand.looks = sig, now, 1
+            if first and cand.moved:
+                return "finished"
+            if not first:
+                cand.moved = False  # changed after the rename: settle like any other file
+            return "waiting"
+        cand.looks += 1
+        if cand.moved or (cand.looks >= 2 and now - cand.stable_since >= self.settle_seconds):
+            return "finished"
+        return "waiting"
+
+
+class _HintHandler(FileSystemEventHandler):
+    """Turns created / modified / moved-to / closed events into hints; never lets an exception out."""
+
+    def __init__(self, on_hint: HintFn) -> None:
+        super().__init__()
+        self._on_hint = on_hint
+
+    def on_any_event(self, event: FileSystemEvent) -> None:
+        try:
+            if event.is_directory:
+                return
+            kind = event.event_type
+            if kind == "moved":
+                self._on_hint(Path(os.fsdecode(event.dest_path)), True)
+            elif kind in ("created", "modified", "closed"):
+                self._on_hint(Path(os.fsdecode(event.src_path)), False)
+        except Exception:  # RELIABILITY: an exception in a handler kills the observer thread
+            log.exception("event handler failed on %r; the next rescan will catch the file", event)
+
+
+class FolderWatcher:
+    """One watchdog observer (native, or polling for shares) on one folder, restartable."""
+
+    def __init__(self, folder: Path, polling: bool, poll_interval: float, on_hint: HintFn) -> None:
+        self.folder = Path(folder)
+        self.polling = bool(polling)
+        self.poll_interval = float(poll_interval)
+        self._handler = _HintHandler(on_hint)
+        self._observer: Observer | PollingObserver | None = None
+        self._lock = threading.Lock()
+
+    @property
+    def kind(self) -> str:
+        return "polling" if self.polling else "native"
+
+    def _make(self, polling: bool) -> Observer | PollingObserver:
+        obs = PollingObserver(timeout=self.poll_interval) if polling else Observer()
+        obs.daemon = True
+        obs.schedule(self._handler, str(self.folder), recursive=False)
+        return obs
+
+    def start(self) -> None:
+        """Start observing; if the native watch cannot start (e.g. inotify limit), fall back to polling."""
+        with self._lock:
+            if self._observer is not None:
+                return
+            try:
+                obs = self._make(self.polling)
+                obs.start()
+            except OSError as exc:
+                if self.polling:
+                    raise
+                log.error("native watch on %s failed (%s); falling back to polling every %gs",
+                          self.folder, exc, self.poll_interval)
+                self.polling = True
+                obs = self._make(True)
+                obs.start()
+            self._observer = obs
+
+    def stop(self, timeout: float = 5.0) -> None:
+        """Stop the observer and wait for its thread (up to ``timeout`` seconds)."""
+        with self._lock:
+            obs, self._observer = self._observer, None
+        if obs is None:
+            return
+        try:
+            obs.stop()
+            obs.join(timeout)
+        except Exception:  # a dead observer may fail to stop cleanly; it is replaced anyway
+            log.exception("stopping the observer failed")
+
+    def is_alive(self) -> bool:
+        with self._lock:
+            return self._observer is not None and self._observer.is_alive()
+
+    def restart(self) -> None:
+        """Replace the observer with a fresh one (after it died)."""
+        self.stop(timeout=2.0)
+        self.start()
