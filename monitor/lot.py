@@ -143,7 +143,7 @@ class Verdict:
             "target": _num(self.target),
             "unit": self.unit,
             "alternative": self.alternative,
-            "alpha": self.alpha,
+            "alpha": _num(self.alpha),
             "test": self.test,
             "statistic": _num(self.statistic),
             "df": _num(self.df),
@@ -169,3 +169,26 @@ def _num(x: float | None) -> float | None:
         return None
     x = float(x)
     return x if math.isfinite(x) else None
+
+
+def unjudged(lot: LotData, reason: str, *, rule_name: str = "", rule_version: str = "",
+             target: float = math.nan, alternative: str = "", alpha: float = math.nan) -> Verdict:
+    """A `review` verdict for a lot no test could be run on (no rule for its product, unusable units).
+
+    Descriptive numbers (n, mean, sd) are still filled in so a person can look.
+    """
+    if lot.values is not None:
+        v = lot.values[np.isfinite(lot.values)]
+        n = int(v.shape[0])
+        mean = float(np.mean(v)) if n else None
+        sd = float(np.std(v, ddof=1)) if n > 1 else None
+    else:
+        assert lot.summary is not None
+        n, mean, sd = lot.summary.n, lot.summary.mean, lot.summary.sd
+    return Verdict(
+        key=lot.key, rule=rule_name, rule_version=rule_version, n=n, mean=mean, sd=sd, target=target,
+        unit=lot.unit, alternative=alternative, alpha=alpha, test=None, statistic=None, df=None,
+        p_value=None, critical_value=None, se=None, ci_low=None, ci_high=None, effect_size=None,
+        normality=NormalityResult(test=None, statistic=None, p_value=None, passed=None, note="not assessed"),
+        power=None, n_for_power=None, verdict="review", reason=reason, files=lot.files,
+    )
