@@ -1,0 +1,70 @@
+"""Fixtures for the daemon core tests: a real config file, rule files and folders under tmp_path."""
+
+from __future__ import annotations
+
+import textwrap
+from pathlib import Path
+
+import pytest
+
+OAT_RULE = """\
+name = "oat-500"
+products = ["OAT-500"]
+target = 500.0
+unit = "g"
+alternative = "two-sided"
+alpha = 0.05
+min_n = 5
+idle_minutes = 30
+"""
+
+JUICE_RULE = """\
+name = "juice-1l"
+products = ["JUICE-1L"]
+target = 1000.0
+unit = "mL"
+alternative = "less"
+alpha = 0.01
+min_n = 5
+idle_minutes = 10
+"""
+
+
+def write_setup(root: Path, extra: str = "", rules: dict[str, str] | None = None) -> Path:
+    """Write config/lotwarden.toml, rules/ and the folders it names under ``root``; return the config path."""
+    (root / "drop").mkdir(parents=True, exist_ok=True)
+    rules_dir = root / "rules"
+    rules_dir.mkdir(parents=True, exist_ok=True)
+    for name, text in (rules if rules is not None else {"oat-500.toml": OAT_RULE,
+                                                         "juice-1l.toml": JUICE_RULE}).items():
+        (rules_dir / name).write_text(text, encoding="utf-8")
+    cfg_dir = root / "config"
+    cfg_dir.mkdir(parents=True, exist_ok=True)
+    cfg = cfg_dir / "lotwarden.toml"
+    cfg.write_text(textwrap.dedent(f"""\
+        rules_dir = "../rules"
+
+        [watch]
+        folder = "../drop"
+        settle_seconds = 0
+
+        [state]
+        folder = "../state"
+
+        [alerts.log]
+        path = "../state/alerts.jsonl"
+        """) + textwrap.dedent(extra), encoding="utf-8")
+    return cfg
+
+
+@pytest.fixture
+def setup_dir(tmp_path: Path) -> Path:
+    """A folder with config/lotwarden.toml, rules/ (OAT-500, JUICE-1L) and drop/."""
+    write_setup(tmp_path)
+    return tmp_path
+
+
+@pytest.fixture
+def make_setup():
+    """The ``write_setup(root, extra="", rules=None) -> config path`` helper, as a fixture."""
+    return write_setup
