@@ -39,7 +39,8 @@ def assemble_lots(exports: Sequence, rule_for: Callable[[str], Rule | None]) -> 
     """Lots from ``exports`` grouped by (line, product, lot), in order of first appearance.
 
     A lot's values keep arrival order across files (files in the order given). Summary records are lots
-    of their own. ``rule_for(product)`` returns the judging rule or None.
+    of their own. ``rule_for(product)`` returns the judging rule or None; a rule with an empty ``unit``
+    (ad-hoc, no unit given) judges values in the unit they were exported in.
     """
     parts: list[pd.DataFrame] = []
     summaries: list[AssembledLot] = []
@@ -48,10 +49,10 @@ def assemble_lots(exports: Sequence, rule_for: Callable[[str], Rule | None]) -> 
             for rec in exp.summaries.itertuples(index=False):
                 key = LotKey(str(rec.line), str(rec.product), str(rec.lot))
                 rule = rule_for(key.product)
-                unit = rule.unit if rule else str(rec.unit)
+                unit = rule.unit if rule and rule.unit else str(rec.unit)
                 problem = None if rule else f"no rule matches product {key.product or '(none)'!r}"
                 mean, sd = float(rec.mean), float(rec.sd)
-                if rule:
+                if rule and rule.unit:
                     try:
                         f = conversion_factor(str(rec.unit), rule.unit, exp.density)
                         mean, sd = mean * f, sd * abs(f)
@@ -78,6 +79,9 @@ def assemble_lots(exports: Sequence, rule_for: Callable[[str], Rule | None]) -> 
             unit = str(g["unit"].iloc[0])
             if rule is None:
                 problem = f"no rule matches product {key.product or '(none)'!r}"
+            elif not rule.unit:  # ad-hoc rule without a unit: judge in the unit exported
+                if g["unit"].nunique() > 1:
+                    problem = "the lot mixes units; give --unit to convert them"
             else:
                 unit = rule.unit
                 try:
