@@ -87,3 +87,60 @@ def mark_retry(conn: sqlite3.Connection, alert_id: int, channel: str, next_at: f
 def mark_dead(conn: sqlite3.Connection, alert_id: int, channel: str, error: str) -> None:
     conn.execute("UPDATE deliveries SET state='dead', attempts=attempts+1, last_error=?"
                  " WHERE alert_id=? AND channel=?", (error[:500], alert_id, channel))
+
+
+# --- sender side -----------------------------------------------------------------------------------------
+# Delivery states: pending -> sent | dead | suppressed ("suppressed": a repeat hold inside the reminder
+# interval; the row stays, with the reason in last_error). Nothing is ever deleted.
+
+SENDER_SCHEMA = """
+CREATE TABLE IF NOT EXISTS email_messages (
+    id          INTEGER PRIMARY KEY,
+    message_id  TEXT NOT NULL,
+    sent_at     REAL NOT NULL,          -- unix seconds
+    recipients  TEXT NOT NULL,          -- JSON list
+    alert_ids   TEXT NOT NULL,          -- JSON list
+    folded      INTEGER NOT NULL DEFAULT 0
+);
+CREATE TABLE IF NOT EXISTS email_recipient_sends (
+    recipient   TEXT NOT NULL,
+    sent_at     REAL NOT NULL
+);
+CREATE INDEX IF NOT EXISTS email_recipient_sends_by ON email_recipient_sends(recipient, sent_at);
+CREATE TABLE IF NOT EXISTS digest_runs (
+    due_at       TEXT PRIMARY KEY,      -- ISO UTC of the scheduled time this digest covers
+    period_start TEXT NOT NULL,
+    period_end   TEXT NOT NULL,
+    created_at   TEXT NOT NULL,
+    dedup_key    TEXT NOT NULL
+);
+"""
+
+
+def ensure_sender_schema(conn: sqlite3.Connection) -> None:
+    """Create the outbox tables plus the senders' own bookkeeping tables (idempotent)."""
+    ensure_schema(conn)
+    for stmt in SENDER_SCHEMA.split(";"):
+        if stmt.strip():
+            conn.execute(stmt)
+
+
+def due_rows(conn: sqlite3.Connection, channel: str, limit: int = 1000) -> list[tuple[int, Alert, int, float]]:
+    """All pending rows of ``channel`` in creation order as (alert_id, Alert, attempts, next_attempt_at)."""
+    import json
+
+    rows = conn.execute(
+        "SELECT a.id, a.payload, d.attempts, d.next_attempt_at FROM deliveries d JOIN alerts a ON a.id = d.alert_id"
+        " WHERE d.channel = ? AND d.state = 'pending' ORDER BY a.id LIMIT ?", (channel, limit)).fetchall()
+    return [(rid, Alert.from_json(json.loads(payload)), att, nxt) for rid, payload, att, nxt in rows]
+
+
+def mark_suppressed(conn: sqlite3.Connection, alert_id: int, channel: str, reason: str) -> None:
+    conn.execute("UPDATE deliveries SET state='suppressed', last_error=? WHERE alert_id=? AND channel=?",
+                 (reason[:500], alert_id, channel))
+
+
+def delivery_counts(conn: sqlite3.Connection) -> dict[tuple[str, str], int]:
+    """{(channel, state): rows} — for status output and tests."""
+    return {(ch, st): n for ch, st, n in
+            conn.execute("SELECT channel, state, COUNT(*) FROM deliveries GROUP BY channel, state")}

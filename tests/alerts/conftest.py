@@ -1,0 +1,109 @@
+"""Fixtures for the alert tests: a real SQLite state file, alert factories, a thread-leak guard."""
+
+from __future__ import annotations
+
+import sqlite3
+import threading
+import time
+from pathlib import Path
+from typing import Any, Callable, Iterable
+
+import pytest
+
+from monitor.alerts import outbox
+from monitor.alerts.alert import Alert
+
+
+@pytest.fixture(autouse=True)
+def no_leaked_threads() -> Iterable[None]:
+    """Fail a test that leaves a thread running (servers, schedulers, observers must be stopped)."""
+    before = set(threading.enumerate())
+    yield
+    deadline = time.monotonic() + 5.0
+    while time.monotonic() < deadline:
+        extra = [t for t in threading.enumerate() if t not in before and t.is_alive()]
+        if not extra:
+            return
+        time.sleep(0.05)
+    pytest.fail(f"threads left running: {[t.name for t in extra]}")
+
+
+@pytest.fixture
+def db_path(tmp_path: Path) -> Path:
+    """A state database file with the outbox tables (as the daemon would create it)."""
+    path = tmp_path / "state.sqlite3"
+    conn = sqlite3.connect(path, isolation_level=None)
+    conn.execute("PRAGMA journal_mode=WAL")
+    outbox.ensure_schema(conn)
+    conn.close()
+    return path
+
+
+def hold_data(lot: str = "A1001", line: str = "L2", product: str = "OAT-500", **over: Any) -> dict[str, Any]:
+    """A hold verdict's JSON as ``Verdict.to_json()`` shapes it, plus the lot's values (invented demo lot)."""
+    values = [497.1, 498.0, 496.4, 497.7, 498.2, 496.9, 497.5, 498.4, 496.8, 497.3]
+    data: dict[str, Any] = {
+        "file": f"exports/{line}-{lot}.csv", "files": [f"exports/{line}-{lot}.csv"], "line": line,
+        "product": product, "lot": lot, "rule": "oat-500", "rule_version": "3f2a9c1d", "n": len(values),
+        "mean": 497.43, "sd": 0.64, "target": 500.0, "unit": "g", "alternative": "two-sided", "alpha": 0.05,
+        "test": "t", "statistic": -12.7, "df": 9.0, "p_value": 4.7e-07, "critical_value": 2.262,
+        "se": 0.2024, "ci_low": 496.97, "ci_high": 497.89, "effect_size": -4.0,
+        "normality": {"test": "shapiro", "statistic": 0.97, "p_value": 0.88, "passed": True, "note": ""},
+        "power": 0.93, "n_for_power": 8, "verdict": "hold", "reason": "mean below target", "excluded": 0,
+        "heads": [], "values": values,
+    }
+    data.update(over)
+    return data
+
+
+def make_alert(kind: str = "hold", lot: str = "A1001", line: str = "L2", product: str = "OAT-500",
+               created_at: str = "2026-12-01T22:00:00+00:00", data: dict[str, Any] | None = None,
+               key: str | None = None) -> Alert:
+    """An alert as the daemon would raise it."""
+    if data is None:
+        data = hold_data(lot, line, product) if kind in ("hold", "review") else {"path": f"exports/{lot}.csv"}
+    return Alert(kind=kind, dedup_key=key or f"{kind}|{line}|{product}|{lot}|3f2a9c1d", created_at=created_at,
+                 data=data, line=line, product=product, lot=lot)
+
+
+@pytest.fixture
+def put(db_path: Path) -> Callable[..., bool]:
+    """Enqueue alerts the daemon's way: its own connection, BEGIN IMMEDIATE, enqueue, COMMIT."""
+    def _put(alert: Alert, channels: Iterable[str]) -> bool:
+        conn = sqlite3.connect(db_path, isolation_level=None, timeout=30)
+        try:
+            conn.execute("BEGIN IMMEDIATE")
+            new = outbox.enqueue(conn, alert, tuple(channels))
+            conn.execute("COMMIT")
+            return new
+        finally:
+            conn.close()
+    return _put
+
+
+def delivery_states(db_path: Path) -> dict[tuple[str, str], str]:
+    """{(dedup_key, channel): state} read straight from the database."""
+    conn = sqlite3.connect(db_path)
+    try:
+        return {(k, ch): st for k, ch, st in conn.execute(
+            "SELECT a.dedup_key, d.channel, d.state FROM deliveries d JOIN alerts a ON a.id = d.alert_id")}
+    finally:
+        conn.close()
+
+
+@pytest.fixture
+def alert_factory() -> Callable[..., Alert]:
+    """``make_alert`` as a fixture."""
+    return make_alert
+
+
+@pytest.fixture
+def hold_factory() -> Callable[..., dict[str, Any]]:
+    """``hold_data`` as a fixture."""
+    return hold_data
+
+
+@pytest.fixture
+def states(db_path: Path) -> Callable[[], dict[tuple[str, str], str]]:
+    """Read the delivery states of the test database."""
+    return lambda: delivery_states(db_path)
