@@ -126,6 +126,7 @@ class Verdict:
     excluded: int = 0              # non-finite values left out by the engine
     heads: tuple[HeadSummary, ...] = ()
     files: tuple[str, ...] = ()
+    average_quantity: Any = None   # monitor.quantity.AverageQuantityResult when the rule has a nominal
 
     def to_json(self) -> dict[str, Any]:
         """The documented JSON object (``check --format json``, alert log, templates)."""
@@ -160,6 +161,7 @@ class Verdict:
             "reason": self.reason,
             "excluded": self.excluded,
             "heads": [h.to_json() for h in self.heads],
+            "average_quantity": None if self.average_quantity is None else self.average_quantity.to_json(),
         }
 
 

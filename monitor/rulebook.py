@@ -37,6 +37,8 @@ RULE_KEYS: dict[str, tuple[Any, str]] = {
     "shift_of_interest": (None, "mean shift (in `unit`, > 0) whose detection power is reported"),
     "target_power": (0.8, "power the reported sample-size-for-power aims at, in (0, 1)"),
     "idle_minutes": (30.0, "daemon: a lot with no new values for this long is closed and judged (> 0)"),
+    "nominal": (None, "nominal quantity on the label (in `unit`, >= 5): adds the average-quantity screen "
+                      "(TNE, T1/T2 packs, mean criterion); a failed screen holds the lot"),
     "description": ("", "free text for people"),
 }
 NORMALITY_KEYS: dict[str, tuple[Any, str]] = {
@@ -73,6 +75,7 @@ class Rule:
     shift_of_interest: float | None = None
     target_power: float = 0.8
     idle_minutes: float = 30.0
+    nominal: float | None = None
     description: str = ""
     normality: NormalityRule = field(default_factory=NormalityRule)
     source: str | None = None
@@ -216,6 +219,11 @@ def _parse_rule(table: Mapping[str, Any], source: str, content_hash: str) -> Rul
         if isinstance(v, bool) or not isinstance(v, int) or v < 2:
             raise _fail(source, "min_n", f"min_n = {v!r} — must be a whole number >= 2")
         values["min_n"] = v
+    if "nominal" in table:
+        v = _number(table, "nominal", source, "nominal")
+        if v < 5:
+            raise _fail(source, "nominal", f"nominal = {v:g} — must be >= 5 (the TNE table starts at 5 g or mL)")
+        values["nominal"] = v
     for key in ("known_sd", "shift_of_interest", "idle_minutes"):
         if key in table:
             v = _number(table, key, source, key)
