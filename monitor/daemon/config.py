@@ -10,7 +10,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Mapping
 
-from monitor.alerts.settings import AlertSettings, parse_alerts
+from monitor.alerts.settings import ALERTS_KEYS, SECTION_KEYS, AlertSettings, parse_alerts
 from monitor.errors import ConfigError
 from monitor.rulebook import Rule, load_rules
 
@@ -31,14 +31,12 @@ CONFIG_KEYS: dict[str, tuple[Any, str]] = {
     "state.folder": (None, "folder of the state database lotwarden.db (required; local disk, not a share)"),
     "state.archive": ("<state.folder>/archive", "where processed files move, in dated subfolders YYYY-MM-DD"),
     "state.quarantine": ("<state.folder>/quarantine", "where rejected files move, with <name>.reason.txt"),
-    "alerts.log.path": (None, "JSON-lines alert log file (the [alerts.log] section is optional)"),
-    "alerts.email.host": (None, "SMTP server host name (the [alerts.email] section is optional)"),
-    "alerts.email.port": (25, "SMTP server port"),
-    "alerts.email.security": ("none", 'connection security: "none" | "starttls" | "tls"'),
-    "alerts.email.sender": (None, "From address of alert e-mails"),
-    "alerts.email.recipients": (None, "list of addresses alert e-mails go to"),
     "profiles.<name>": ({}, "a feed profile: how one weigher's exports are read (see monitor.ingest.profile)"),
 }
+# The [alerts] keys come from the alert settings' own tables, so this table follows their changes.
+CONFIG_KEYS.update({f"alerts.{k}": v for k, v in ALERTS_KEYS.items()})
+for _section_name, _keys in SECTION_KEYS.items():
+    CONFIG_KEYS.update({f"alerts.{_section_name}.{k}": v for k, v in _keys.items()})
 
 _TOP = ("rules_dir", "watch", "state", "alerts", "profiles")
 _WATCH = ("folder", "settle_seconds", "polling", "poll_interval", "rescan_seconds", "include", "ignore")
