@@ -1,0 +1,199 @@
+"""Power of the one-sample t- and z-tests against a mean shift, and the sample size that reaches a power.
+
+Power is "strict": for a two-sided test both rejection tails count (as R's ``power.t.test(strict=TRUE)``
+and statsmodels' ``TTestPower``). For Student's t the statistic under a true shift δ follows the noncentral
+t with df = n − 1 and noncentrality δ/σ·√n; for the z-test (σ known) it is normal with mean δ/σ·√n. The
+shift's direction follows the test: ``less`` looks for a downward shift, ``greater`` for an upward one; a
+two-sided test's power does not depend on the sign of the shift.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from scipy import special
+
+from monitor.stats.location import check_alternative, critical_value
+
+__all__ = ["MAX_PLAN_N", "n_for_power", "plan_sample_size", "power", "power_curve"]
+
+MAX_PLAN_N = 10 ** 9          # beyond this, sample-size planning reports "not reachable"
+
+
+def power(n: np.ndarray | int, shift: float | np.ndarray, sd: float | np.ndarray, alpha: float,
+          alternative: str = "two-sided", known_sd: bool = False) -> np.ndarray | float:
+    """Probability that the test rejects when the true mean is ``shift`` away from target.
+
+    Parameters
+    ----------
+    n : int or ndarray of int
+        Sample sizes (>= 2 for the t-test, >= 1 for z).
+    shift : float or ndarray
+        Size of the mean shift (> 0), in the unit of the values.
+    sd : float or ndarray
+        Process standard deviation (> 0): the sample sd for the t-test, the known sd for z.
+    alpha : float
+        Significance level of the test.
+    alternative : {"two-sided", "less", "greater"}
+    known_sd : bool
+        True for the z-test (normal distribution), False for Student's t (noncentral t).
+
+    Returns
+    -------
+    float or ndarray
+
+    Examples
+    --------
+    >>> round(float(power(20, 0.2, 1.0, 0.05)), 6)    # R pwr.t.test(d=0.2, n=20): 0.1359563
+    0.135956
+    """
+    check_alternative(alternative)
+    nn = np.asarray(n, dtype=np.float64)
+    with np.errstate(all="ignore"):
+        delta = np.abs(np.asarray(shift, dtype=np.float64)) / np.asarray(sd, dtype=np.float64) * np.sqrt(nn)
+        one_sided = alternative != "two-sided"
+        a = alpha if one_sided else alpha / 2.0
+        if known_sd:
+            crit = float(critical_value(a, "greater", None))
+            result = special.ndtr(delta - crit)
+            if not one_sided:
+                result = result + special.ndtr(-delta - crit)
+        else:
+            df = nn - 1.0
+            crit = np.asarray(critical_value(a, "greater", np.broadcast_to(df, np.broadcast(df, delta).shape)))
+            # P(T' > c) = P(T'' < −c) with T'' noncentral t of noncentrality −δ: accurate in both tails
+            result = special.nctdtr(df, -delta, -crit)
+            if not one_sided:
+                result = result + special.nctdtr(df, delta, -crit)
+        result = np.minimum(result, 1.0)
+    return result if np.ndim(result) else float(result)
+
+
+def n_for_power(shift: float | np.ndarray, sd: float | np.ndarray, alpha: float, target_power: float,
+                alternative: str = "two-sided", known_sd: bool = False) -> np.ndarray:
+    """Smallest n >= 2 whose power reaches ``target_power`` (vectorised over ``shift`` / ``sd``).
+
+    Power rises with n, so a doubling search brackets the answer and a bisection finds it.
+
+    Parameters
+    ----------
+    shift, sd : float or ndarray
+        Shift of interest and process sd (both > 0).
+    alpha, target_power : float
+    alternative : {"two-sided", "less", "greater"}
+    known_sd : bool
+
+    Returns
+    -------
+    ndarray of int64
+        -1 where even ``MAX_PLAN_N`` units would not reach the power (or inputs are not finite > 0).
+
+    Examples
+    --------
+    >>> n_for_power(0.5, 1.0, 0.05, 0.8).tolist()      # statsmodels solve_power: 33.37 -> 34
+    [34]
+    """
+    if not 0.0 < target_power < 1.0:
+        raise ValueError(f"target_power = {target_power!r} — must be in (0, 1)")
+    s, d = np.broadcast_arrays(np.atleast_1d(np.asarray(shift, dtype=np.float64)),
+                               np.atleast_1d(np.asarray(sd, dtype=np.float64)))
+    ok = np.isfinite(s) & np.isfinite(d) & (s > 0) & (d > 0)
+    s = np.where(ok, s, 1.0)
+    d = np.where(ok, d, 1.0)
+
+    def reaches(n: np.ndarray) -> np.ndarray:
+        return power(n, s, d, alpha, alternative, known_sd) >= target_power
+
+    lo = np.full(s.shape, 1, dtype=np.int64)            # power(lo) < target (or lo = 1: below the range)
+    hi = np.full(s.shape, 2, dtype=np.int64)
+    done = reaches(hi)
+    while not done.all():
+        grow = ~done
+        lo = np.where(grow, hi, lo)
+        hi = np.where(grow, np.minimum(hi * 2, MAX_PLAN_N), hi)
+        done = done | reaches(hi) | (hi >= MAX_PLAN_N)
+    unreachable = ~reaches(hi)
+    while True:
+        gap = (hi - lo) > 1
+        if not gap.any():
+            break
+        mid = np.where(gap, (lo + hi) // 2, hi)
+        hit = reaches(mid)
+        hi = np.where(gap & hit, mid, hi)
+        lo = np.where(gap & ~hit, mid, lo)
+    return np.where(ok & ~unreachable, hi, -1)
+
+
+def plan_sample_size(sd: float, shift: float, alpha: float, power: float, alternative: str = "two-sided",
+                     known_sd: bool = False) -> int:
+    """Smallest lot size (>= 2) at which the test detects ``shift`` with probability ``power``.
+
+    Parameters
+    ----------
+    sd : float
+        Process standard deviation (> 0).
+    shift : float
+        Mean shift worth detecting (> 0), in the unit of ``sd``.
+    alpha : float
+        Significance level in (0, 1).
+    power : float
+        Wanted power in (0, 1).
+    alternative : {"two-sided", "less", "greater"}
+    known_sd : bool
+        True if ``sd`` is a known process sd (z-test), False for Student's t.
+
+    Returns
+    -------
+    int
+
+    Raises
+    ------
+    ValueError
+        If an argument is out of range or more than ``MAX_PLAN_N`` units would be needed.
+
+    Examples
+    --------
+    >>> plan_sample_size(sd=4.0, shift=2.0, alpha=0.05, power=0.8)
+    34
+    """
+    check_alternative(alternative)
+    for name, v in (("sd", sd), ("shift", shift)):
+        if not (isinstance(v, (int, float)) and math.isfinite(v) and v > 0):
+            raise ValueError(f"{name} = {v!r} — must be a finite number > 0")
+    if not 0.0 < alpha < 1.0:
+        raise ValueError(f"alpha = {alpha!r} — must be in (0, 1)")
+    n = int(n_for_power(shift, sd, alpha, power, alternative, known_sd)[0])
+    if n < 0:
+        raise ValueError(f"a shift of {shift:g} against sd {sd:g} needs more than {MAX_PLAN_N} units")
+    return n
+
+
+def power_curve(sd: float, shift: float, alpha: float, alternative: str,
+                ns: list[int] | range | np.ndarray, known_sd: bool = False) -> list[tuple[int, float]]:
+    """Power of the test at each lot size in ``ns``.
+
+    Parameters
+    ----------
+    sd, shift, alpha : float
+    alternative : {"two-sided", "less", "greater"}
+    ns : iterable of int
+        Lot sizes (>= 2 for Student's t).
+    known_sd : bool
+
+    Returns
+    -------
+    list of (n, power)
+
+    Examples
+    --------
+    >>> [(n, round(p, 3)) for n, p in power_curve(1.0, 1.0, 0.05, "greater", [5, 10])]
+    [(5, 0.58), (10, 0.898)]
+    """
+    sizes = [int(n) for n in ns]
+    if any(n < (1 if known_sd else 2) for n in sizes):
+        raise ValueError("every n must be >= 2 (>= 1 with a known sd)")
+    if not sizes:
+        return []
+    p = np.atleast_1d(power(np.array(sizes), shift, sd, alpha, alternative, known_sd))
+    return list(zip(sizes, (float(v) for v in p)))
