@@ -1,0 +1,119 @@
+"""Vectorised conversion of raw text columns: numbers, units and timestamps, with a status per row."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from monitor.units import canonical_unit
+
+OK, NOT_NUMBER, NOT_FINITE = 0, 1, 2
+# A plain decimal number (ASCII digits, optional sign and exponent); RE2 syntax, whole field.
+_NUMBER = r"^[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?$"
+_NON_FINITE = r"(?i)^[+-]?(inf|infinity|nan)$"
+_ISO_SPACE = r"^([0-9]{4}-[0-9]{2}-[0-9]{2}) "
+
+
+def trim(arr: pa.Array) -> pa.Array:
+    """Strip leading and trailing whitespace from every string."""
+    return pc.utf8_trim_whitespace(arr)
+
+
+def parse_numbers(text: pa.Array, decimal: str) -> tuple[np.ndarray, np.ndarray]:
+    """Float64 values and a status per row (OK, NOT_NUMBER, NOT_FINITE) of trimmed number strings.
+
+    With ``decimal=","`` the comma is the decimal mark and a "." makes the field not a number.
+    """
+    n = len(text)
+    status = np.full(n, NOT_NUMBER, dtype=np.int8)
+    if n == 0:
+        return np.zeros(0, dtype=np.float64), status
+    if decimal == ",":
+        has_dot = pc.match_substring(text, ".")
+        text = pc.if_else(has_dot, pa.scalar("x"), pc.replace_substring(text, ",", "."))
+    try:  # fast path: Arrow's cast accepts exactly the plain numbers plus inf/infinity/nan (any case)
+        values = pc.cast(text, pa.float64()).to_numpy(zero_copy_only=False)
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        pass
+    else:
+        finite = np.isfinite(values)
+        status[finite] = OK
+        status[~finite] = NOT_FINITE
+        return np.where(finite, values, np.nan), status
+    plain = pc.match_substring_regex(text, _NUMBER).to_numpy(zero_copy_only=False)
+    odd = pc.match_substring_regex(text, _NON_FINITE).to_numpy(zero_copy_only=False)
+    ok_text = pc.if_else(pa.array(plain | odd), text, pa.scalar("0"))
+    values = pc.cast(ok_text, pa.float64()).to_numpy(zero_copy_only=False)
+    finite = np.isfinite(values)
+    status[plain & finite] = OK
+    status[(plain & ~finite) | odd] = NOT_FINITE
+    values = np.where(status == OK, values, np.nan)
+    return values, status
+
+
+def parse_units(text: pa.Array, default: str) -> tuple[pa.Array, np.ndarray]:
+    """Canonical unit per row (an empty cell means ``default``) and a mask of unknown units."""
+    uniques = pc.unique(text).to_pylist()
+    table = {u: (canonical_unit(u) if u else default) for u in uniques}
+    if len(uniques) == 1:  # the usual case: one unit for the whole file
+        unit = table[uniques[0]]
+        return pa.repeat(unit or "", len(text)), np.full(len(text), unit is None)
+    known = [u for u, c in table.items() if c is not None]
+    good = pc.is_in(text, value_set=pa.array(known, pa.string())).to_numpy(zero_copy_only=False)
+    index = pc.index_in(text, value_set=pa.array(known, pa.string()))
+    canon = pa.array([table[u] for u in known], pa.string())
+    units = canon.take(pc.fill_null(index, 0)) if known else pa.repeat("", len(text))
+    return units, ~good
+
+
+def parse_timestamps(text: pa.Array, fmt: str | None) -> tuple[pa.Array, np.ndarray]:
+    """ISO 8601 text per row ("" for an empty cell) and a mask of cells that are not timestamps.
+
+    Without ``fmt``: ISO 8601 (the text is kept, a space between date and time becomes "T"); when no
+    cell is ISO 8601, pandas' format inference is tried. With ``fmt``: strptime, rewritten as ISO 8601.
+    """
+    n = len(text)
+    empty = pc.equal(pc.binary_length(text), 0).to_numpy(zero_copy_only=False)
+    if n == 0 or empty.all():
+        return pa.repeat("", n), np.zeros(n, dtype=bool)
+    if fmt is not None:
+        return _formatted(pd.to_datetime(_series(text), format=fmt, errors="coerce"), empty)
+    try:  # fast path: every non-empty cell is ISO 8601 without a zone
+        filled = text if not empty.any() else pc.if_else(pa.array(empty), pa.scalar("2000-01-01"), text)
+        pc.cast(filled, pa.timestamp("us"))
+        return pc.replace_substring(text, " ", "T", max_replacements=1), np.zeros(n, dtype=bool)
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        pass
+    iso = pc.replace_substring_regex(text, _ISO_SPACE, r"\1T")
+    parsed = pd.to_datetime(_series(iso), format="ISO8601", errors="coerce", utc=True)
+    bad = parsed.isna().to_numpy() & ~empty
+    if bad.sum() == (~empty).sum():
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            inferred = pd.to_datetime(_series(text), errors="coerce")
+        if inferred.notna().any():
+            return _formatted(inferred, empty)
+    return pc.if_else(pa.array(bad | empty), pa.scalar(""), iso), bad
+
+
+def _series(text: pa.Array) -> pd.Series:
+    return pd.Series(text.to_pylist(), dtype=object)
+
+
+def _formatted(parsed: pd.Series, empty: np.ndarray) -> tuple[pa.Array, np.ndarray]:
+    """ISO 8601 strings of parsed timestamps (UTC with "Z" when they carry a zone)."""
+    bad = parsed.isna().to_numpy() & ~empty
+    zoned = getattr(parsed.dt, "tz", None) is not None
+    if zoned:
+        parsed = parsed.dt.tz_convert("UTC").dt.tz_localize(None)
+    raw = parsed.to_numpy(dtype="datetime64[us]")
+    frac = (raw.astype(np.int64) % 1_000_000 != 0) & ~np.isnat(raw)
+    out = np.datetime_as_string(raw, unit="us" if frac.any() else "s").astype(object)
+    if zoned:
+        out = out + "Z"
+    out[bad | empty] = ""
+    return pa.array(out, pa.string()), bad

@@ -1,0 +1,316 @@
+"""Read one checkweigher export (values or lot summaries) into an ``Export`` with bad-row accounting."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Literal
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from monitor.errors import ExportError
+from monitor.ingest import convert
+from monitor.ingest.profile import CANONICAL_COLUMNS, DEFAULT_PROFILE, FeedProfile
+from monitor.ingest.table import RawTable, split_body
+from monitor.ingest.text import Header, decode, find_header
+from monitor.units import ALLOWED as ALLOWED_UNITS
+from monitor.units import conversion_factor
+
+ROW_COLUMNS = ("source_line", "lot", "value", "timestamp", "product", "line", "head", "unit")
+SUMMARY_COLUMNS = ("source_line", "lot", "n", "mean", "sd", "product", "line", "unit", "timestamp")
+
+
+@dataclass(frozen=True)
+class BadRow:
+    """A data row left out: its physical line, the export's column (None for the whole row), raw text, why."""
+
+    line: int
+    column: str | None
+    value: str | None
+    reason: str
+
+
+@dataclass(frozen=True, eq=False)
+class Export:
+    """One export file, read: measurements (kind "values") or lot summaries (kind "summary")."""
+
+    path: str
+    kind: Literal["values", "summary"]
+    rows: pd.DataFrame
+    summaries: pd.DataFrame
+    bad_rows: tuple[BadRow, ...] = ()
+    dropped: int = 0
+    end_of_lot: tuple[tuple[int, str], ...] = ()
+    density: float | None = None
+    profile: str = "default"
+
+
+def read_export(path: str | Path, profile: FeedProfile | None = None) -> Export:
+    """Read an export file; raises ExportError (path, line, column, what is allowed) when it is unusable."""
+    try:
+        data = Path(path).read_bytes()
+    except OSError as exc:
+        raise ExportError(f"cannot read the file: {exc.strerror or exc}", path=str(path)) from None
+    return read_export_bytes(data, name=str(path), profile=profile)
+
+
+def read_export_bytes(data: bytes, *, name: str, profile: FeedProfile | None = None) -> Export:
+    """Read an export from bytes already in memory; ``name`` is used in errors and ``Export.path``."""
+    prof = profile or DEFAULT_PROFILE
+    buf = decode(data, prof, name)
+    header = find_header(buf, prof, name)
+    index, kind = _resolve_columns(header, prof, name)
+    raw = split_body(buf, header, name)
+    return _Rows(raw, header, index, kind, prof, name).build()
+
+
+def _resolve_columns(header: Header, prof: FeedProfile, name: str) -> tuple[dict[str, int], str]:
+    """Canonical column name -> field index in the header; and the kind of export."""
+    positions: dict[str, list[int]] = {}
+    for i, h in enumerate(header.names):
+        positions.setdefault(h.casefold(), []).append(i)
+    mapped = dict(prof.columns)
+    found = ", ".join(repr(h) for h in header.names) or "nothing"
+    index: dict[str, int] = {}
+    for canon in CANONICAL_COLUMNS:
+        wanted = prof.column_for(canon)
+        hits = positions.get(wanted.casefold(), [])
+        if len(hits) > 1:
+            raise ExportError(f"column {wanted!r} appears {len(hits)} times in the header (fields "
+                              f"{', '.join(str(h + 1) for h in hits)})", path=name, line=header.line,
+                              hint="each column the reader uses must appear once")
+        if hits:
+            index[canon] = hits[0]
+        elif canon in mapped:
+            raise ExportError(f"column {wanted!r} (profiles.{prof.name}.columns.{canon}) is not in the "
+                              f"header; found {found}", path=name, line=header.line,
+                              hint="fix the column mapping in the feed profile")
+    used: dict[int, str] = {}
+    for canon, i in index.items():
+        if i in used:
+            raise ExportError(f"columns {used[i]!r} and {canon!r} both read header field {header.names[i]!r}",
+                              path=name, line=header.line, hint="fix the column mapping in the feed profile")
+        used[i] = canon
+    if "lot" in index and "value" in index:
+        return index, "values"
+    if "lot" in index and all(k in index for k in ("n", "mean", "sd")):
+        return index, "summary"
+    need = ", ".join(repr(prof.column_for(c)) for c in ("lot", "value"))
+    alt = ", ".join(repr(prof.column_for(c)) for c in ("lot", "n", "mean", "sd"))
+    raise ExportError(f"the header needs columns {need} (or {alt} for lot summaries); found {found}",
+                      path=name, line=header.line,
+                      hint="map the export's headers with [profiles.NAME.columns], or set skip_lines / "
+                           "header_prefix if the header is not the first line")
+
+
+class _Rows:
+    """Builds an Export from the raw table; one instance per file (holds the bad-row bookkeeping)."""
+
+    def __init__(self, raw: RawTable, header: Header, index: dict[str, int], kind: str, prof: FeedProfile,
+                 name: str) -> None:
+        self.raw, self.header, self.index, self.kind, self.prof, self.name = raw, header, index, kind, prof, name
+        self.n = raw.size
+        self.code = np.zeros(self.n, dtype=np.int16)      # 0 = good; else 1 + index into self.reasons
+        self.reasons: list[tuple[str, str, pa.Array]] = []  # (canonical column, reason template, raw text)
+        self.trimmed: dict[str, pa.Array] = {}
+
+    def text(self, canon: str) -> pa.Array | None:
+        if canon not in self.index:
+            return None
+        if canon not in self.trimmed:
+            self.trimmed[canon] = convert.trim(self.raw.columns[self.index[canon]])
+        return self.trimmed[canon]
+
+    def flag(self, mask: np.ndarray, canon: str, reason: str) -> None:
+        """Mark rows as bad with ``reason`` ("{v}" is replaced by the raw field) unless already bad."""
+        fresh = mask & (self.code == 0)
+        if fresh.any():
+            self.reasons.append((canon, reason, self.raw.columns[self.index[canon]]))
+            self.code[fresh] = len(self.reasons)
+
+    def build(self) -> Export:
+        prof = self.prof
+        lot = self.text("lot")
+        marker = np.zeros(self.n, dtype=bool)
+        if prof.end_of_lot is not None:
+            marker = pc.equal(lot, prof.end_of_lot).to_numpy(zero_copy_only=False)
+        self.code[marker] = -1
+        self.code[self._blank(lot)] = -3
+        multiline = np.zeros(self.n, dtype=bool)
+        for canon in ("lot", "product", "line", "head") if self.raw.quoted else ():
+            t = self.text(canon)
+            if t is not None:
+                multiline |= pc.match_substring(t, "\n").to_numpy(zero_copy_only=False)
+        self.flag(pc.equal(pc.binary_length(lot), 0).to_numpy(zero_copy_only=False), "lot", "empty lot code")
+        self.flag(multiline, "lot", "a text field spans several lines (unbalanced quote?)")
+        main = "value" if self.kind == "values" else "mean"
+        dropped = np.zeros(self.n, dtype=bool)
+        if prof.drop_values:
+            dropped = pc.is_in(self.text(main), value_set=pa.array(prof.drop_values, pa.string())).to_numpy(
+                zero_copy_only=False) & (self.code == 0)
+            self.code[dropped] = -2
+        values = self._number(main)
+        units = self._units()
+        values = self._subtract_tare(values, units)
+        stamps = self._timestamps()
+        extra: dict[str, np.ndarray] = {}
+        if self.kind == "summary":
+            n_val = self._number("n", integer=True)
+            sd_val = self._number("sd")
+            self.flag(sd_val < 0, "sd", "sd '{v}' is negative — must be >= 0")
+            extra = {"n": n_val, "sd": sd_val}
+        good = self.code == 0
+        bad_count = int((self.code > 0).sum()) + len(self.raw.problems)
+        data_rows = int((self.code >= 0).sum() + (self.code == -2).sum()) + len(self.raw.problems)
+        self._check_budget(bad_count, data_rows, int(good.sum()), int(dropped.sum()))
+        frame = self._frame(good, values, units, stamps, extra)
+        rows, summaries = (frame, _empty(SUMMARY_COLUMNS)) if self.kind == "values" else (_empty(ROW_COLUMNS), frame)
+        return Export(path=self.name, kind=self.kind, rows=rows, summaries=summaries,  # type: ignore[arg-type]
+                      bad_rows=self._bad_rows(), dropped=int(dropped.sum()), end_of_lot=self._markers(marker),
+                      density=prof.density, profile=prof.name)
+
+    def _blank(self, lot: pa.Array) -> np.ndarray:
+        """Rows whose every field is empty or whitespace (empty lines, lines of delimiters only)."""
+        blank = np.zeros(self.n, dtype=bool)
+        cand = np.flatnonzero(pc.equal(pc.binary_length(lot), 0).to_numpy(zero_copy_only=False))
+        if cand.size:
+            take = pa.array(cand)
+            empty = np.ones(cand.size, dtype=bool)
+            for col in self.raw.columns:
+                empty &= pc.equal(pc.binary_length(convert.trim(col.take(take))), 0).to_numpy(zero_copy_only=False)
+            blank[cand[empty]] = True
+        return blank
+
+    # -- conversions ------------------------------------------------------------------------------
+    def _number(self, canon: str, integer: bool = False) -> np.ndarray:
+        decimal = self.prof.decimal
+        values, status = convert.parse_numbers(self.text(canon), decimal)
+        if integer:
+            whole = (status == convert.OK) & (values >= 1) & (np.floor(values) == values)
+            self.flag(~whole, canon, f"{canon} '{{v}}' is not a positive whole number")
+            return np.where(whole, values, 0).astype(np.int64)
+        mark = "decimal comma" if decimal == "," else "decimal point"
+        self.flag(status == convert.NOT_NUMBER, canon,
+                  f"{canon} '{{v}}' is not a number — expected digits with a {mark}")
+        self.flag(status == convert.NOT_FINITE, canon, f"{canon} '{{v}}' is not finite — must be a finite number")
+        return values
+
+    def _units(self) -> pa.Array:
+        t = self.text("unit")
+        if t is None:
+            return pa.repeat(self.prof.unit, self.n)
+        units, unknown = convert.parse_units(t, self.prof.unit)
+        self.flag(unknown, "unit", f"unknown unit '{{v}}' — allowed: {ALLOWED_UNITS}")
+        return units
+
+    def _subtract_tare(self, values: np.ndarray, units: pa.Array) -> np.ndarray:
+        if self.prof.tare == 0.0:
+            return values
+        out = values.copy()
+        units_np = units.to_numpy(zero_copy_only=False)
+        for u in pc.unique(units).to_pylist():
+            rows = units_np == u
+            try:
+                out[rows] = values[rows] - self.prof.tare * conversion_factor(self.prof.unit, u, self.prof.density)
+            except ValueError:
+                self.flag(rows, "unit", f"unit '{{v}}': the tare is in {self.prof.unit} and needs a density "
+                                        "to be subtracted")
+        return out
+
+    def _timestamps(self) -> pa.Array:
+        t = self.text("timestamp")
+        if t is None:
+            return pa.repeat("", self.n)
+        stamps, bad = convert.parse_timestamps(t, self.prof.timestamp_format)
+        allowed = repr(self.prof.timestamp_format) if self.prof.timestamp_format else "ISO 8601"
+        self.flag(bad, "timestamp", f"timestamp '{{v}}' does not match {allowed} — set timestamp_format "
+                                    "in the feed profile")
+        return stamps
+
+    # -- results ----------------------------------------------------------------------------------
+    def _check_budget(self, bad: int, data_rows: int, good: int, dropped: int) -> None:
+        allowed = self.prof.allowed_bad_rows(data_rows)
+        line, what, how = self._first_bad()
+        fix = f"fix the export, or raise max_bad_rows in profile {self.prof.name!r}"
+        if bad > allowed:
+            raise ExportError(f"{what}; {bad} of {data_rows} rows bad, the profile allows {allowed}",
+                              path=self.name, line=line, hint=f"{how}; {fix}" if how else fix)
+        if good == 0:
+            if bad:
+                raise ExportError(f"no usable rows: {what}", path=self.name, line=line, hint=how or None)
+            if dropped:
+                raise ExportError(f"no usable rows: all {dropped} are 'no measurement' values "
+                                  f"({', '.join(repr(v) for v in self.prof.drop_values)})",
+                                  path=self.name, line=self.header.line)
+            raise ExportError("no data rows after the header", path=self.name, line=self.header.line)
+
+    def _first_bad(self) -> tuple[int, str, str]:
+        """Line, "what is wrong (column 'X')" and "what is allowed" of the first bad row."""
+        cands: list[tuple[int, str, str]] = [(p.line, p.reason, "") for p in self.raw.problems]
+        hit = np.flatnonzero(self.code > 0)
+        if hit.size:
+            row = self._describe(int(hit[0]))
+            what, _, how = row.reason.partition(" — ")
+            cands.append((row.line, f"{what} (column {row.column!r})", how))
+        return min(cands) if cands else (self.header.line, "", "")
+
+    def _describe(self, i: int) -> BadRow:
+        canon, template, raw = self.reasons[self.code[i] - 1]
+        value = raw[i].as_py()
+        return BadRow(int(self.raw.lines[i]), self.header.names[self.index[canon]], value,
+                      template.replace("{v}", _short(value.strip())))
+
+    def _bad_rows(self) -> tuple[BadRow, ...]:
+        found = [self._describe(int(i)) for i in np.flatnonzero(self.code > 0)]
+        found += [BadRow(p.line, None, _short(p.text), p.reason) for p in self.raw.problems]
+        return tuple(sorted(found, key=lambda b: b.line))
+
+    def _markers(self, marker: np.ndarray) -> tuple[tuple[int, str], ...]:
+        if not marker.any():
+            return ()
+        lots = self.text("lot")
+        carriers = np.flatnonzero(~marker & (pc.binary_length(lots).to_numpy(zero_copy_only=False) > 0))
+        out = []
+        for i in np.flatnonzero(marker):
+            k = np.searchsorted(carriers, i) - 1
+            out.append((int(self.raw.lines[i]), lots[int(carriers[k])].as_py() if k >= 0 else ""))
+        return tuple(out)
+
+    def _frame(self, good: np.ndarray, values: np.ndarray, units: pa.Array, stamps: pa.Array,
+               extra: dict[str, np.ndarray]) -> pd.DataFrame:
+        mask = pa.array(good)
+        every = bool(good.all())
+
+        def text(arr: pa.Array) -> pd.Series:
+            return pd.Series(arr if every else arr.filter(mask), dtype="str")
+
+        cols: dict[str, pd.Series | np.ndarray] = {"source_line": self.raw.lines[good].astype(np.int64),
+                                                   "lot": text(self.text("lot"))}
+        for canon in ("product", "line", "head"):
+            t = self.text(canon)
+            cols[canon] = text(t if t is not None else pa.repeat("", self.n))
+        cols["unit"] = text(units)
+        cols["timestamp"] = text(stamps)
+        if self.kind == "values":
+            cols["value"] = values[good].astype(np.float64)
+            return pd.DataFrame({c: _plain(cols[c]) for c in ROW_COLUMNS})
+        cols["mean"] = values[good].astype(np.float64)
+        cols["n"] = extra["n"][good]
+        cols["sd"] = extra["sd"][good].astype(np.float64)
+        return pd.DataFrame({c: _plain(cols[c]) for c in SUMMARY_COLUMNS})
+
+
+def _plain(col: pd.Series | np.ndarray) -> pd.Series | np.ndarray:
+    return col.reset_index(drop=True) if isinstance(col, pd.Series) else col
+
+
+def _empty(columns: tuple[str, ...]) -> pd.DataFrame:
+    kinds = {"source_line": "int64", "value": "float64", "mean": "float64", "sd": "float64", "n": "int64"}
+    return pd.DataFrame({c: pd.Series([], dtype=kinds.get(c, "str")) for c in columns})
+
+
+def _short(text: str, limit: int = 80) -> str:
+    return text if len(text) <= limit else text[:limit - 1] + "…"

@@ -1,0 +1,122 @@
+"""The export body split into raw text columns by pyarrow's CSV parser, each row with its physical line."""
+
+from __future__ import annotations
+
+import csv
+from dataclasses import dataclass
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.csv as pacsv
+
+from monitor.errors import ExportError
+from monitor.ingest.text import Header
+
+
+@dataclass(frozen=True)
+class RawProblem:
+    """A row the parser could not split into the header's fields."""
+
+    line: int
+    text: str
+    reason: str
+
+
+@dataclass(frozen=True, eq=False)
+class RawTable:
+    """Body rows as untrimmed string columns (one per header field) with their line numbers."""
+
+    columns: tuple[pa.Array, ...]
+    lines: np.ndarray
+    problems: tuple[RawProblem, ...]
+    quoted: bool = False
+
+    @property
+    def size(self) -> int:
+        return int(self.lines.shape[0])
+
+
+def split_body(buf: bytes, header: Header, name: str) -> RawTable:
+    """Parse ``buf[header.body_start:]`` into ``len(header.names)`` string columns.
+
+    Rows of the header's width are kept as they are (blank ones too: the caller drops them). A line of
+    whitespace is left out; a row with too few fields, or too many non-empty ones, becomes a RawProblem;
+    trailing empty extra fields are ignored.
+    """
+    width = len(header.names)
+    names = [f"c{i}" for i in range(width)]
+    body = memoryview(buf)[header.body_start:]
+    if len(body) == 0:
+        return RawTable(tuple(pa.array([], pa.string()) for _ in names), np.zeros(0, np.int64), ())
+    table, invalid = _parse(body, names, header, name, threads=True)
+    if invalid:  # row numbers of bad rows are known only to the single-threaded parser
+        table, invalid = _parse(body, names, header, name, threads=False)
+    columns = [table.column(c).combine_chunks() if table.num_rows else pa.array([], pa.string()) for c in names]
+    n_valid = table.num_rows
+    if any(num is None for num, _ in invalid):
+        raise ExportError("cannot number the rows of this file", path=name)
+    inv_num = np.array([num for num, _ in invalid], dtype=np.int64)
+    total = n_valid + len(invalid)
+    valid_rec = np.setdiff1d(np.arange(1, total + 1, dtype=np.int64), inv_num, assume_unique=True)
+    # Physical line of record k = header line + k + newlines inside quoted fields of records before k.
+    extra = np.zeros(total + 1, dtype=np.int64)
+    quoted = buf.find(b'"', header.body_start) >= 0
+    if quoted:
+        if n_valid:
+            extra[valid_rec] = np.sum([pc.count_substring(c, "\n").to_numpy(zero_copy_only=False)
+                                       for c in columns], axis=0)
+        for num, text in invalid:
+            extra[num] = text.count("\n")
+    first_line = header.line + np.arange(total + 1, dtype=np.int64) + np.concatenate(([0], np.cumsum(extra)[:-1]))
+    lines = first_line[valid_rec]
+
+    problems: list[RawProblem] = []
+    recovered: list[tuple[int, list[str]]] = []
+    for num, text in invalid:
+        line = int(first_line[num])
+        if "\n" in text:
+            raise ExportError("a quoted field opened on this line is never closed; the lines after it would be "
+                              "lost", path=name, line=line, hint='check the quote characters (") in this row')
+        fields = next(csv.reader([text], delimiter=header.delimiter, strict=False), [])
+        if all(not f.strip() for f in fields):
+            continue
+        if len(fields) > width and all(not f.strip() for f in fields[width:]):
+            recovered.append((line, fields[:width]))
+        elif len(fields) < width:
+            problems.append(RawProblem(line, text, f"too few fields: {len(fields)}, the header has {width}"))
+        else:
+            problems.append(RawProblem(line, text, f"too many fields: {len(fields)}, the header has {width}"))
+    if recovered:
+        columns = [pa.concat_arrays([col, pa.array([f[i] for _, f in recovered], pa.string())])
+                   for i, col in enumerate(columns)]
+        lines = np.concatenate([lines, np.array([ln for ln, _ in recovered], dtype=np.int64)])
+        order = pa.array(np.argsort(lines, kind="stable"))
+        lines = lines[order.to_numpy()]
+        columns = [c.take(order) for c in columns]
+    return RawTable(tuple(columns), lines, tuple(problems), quoted)
+
+
+def _parse(body: memoryview, names: list[str], header: Header, name: str,
+           threads: bool) -> tuple[pa.Table, list[tuple[int, str]]]:
+    """pyarrow's CSV parser, every field as a string; rows of the wrong width are collected, not parsed."""
+    invalid: list[tuple[int, str]] = []
+
+    def on_invalid(row: pacsv.InvalidRow) -> str:
+        invalid.append((row.number, row.text))
+        return "skip"
+
+    try:
+        table = pacsv.read_csv(
+            pa.BufferReader(pa.py_buffer(body)),
+            read_options=pacsv.ReadOptions(column_names=names, use_threads=threads),
+            parse_options=pacsv.ParseOptions(delimiter=header.delimiter, quote_char='"', double_quote=True,
+                                             escape_char=False, newlines_in_values=True,
+                                             ignore_empty_lines=False, invalid_row_handler=on_invalid),
+            convert_options=pacsv.ConvertOptions(column_types={c: pa.string() for c in names},
+                                                 strings_can_be_null=False, quoted_strings_can_be_null=False,
+                                                 null_values=[], check_utf8=False),
+        )
+    except (pa.ArrowException, ValueError) as exc:
+        raise ExportError(f"cannot split the file into fields: {exc}", path=name, line=header.line + 1) from None
+    return table, invalid

@@ -1,0 +1,132 @@
+"""Raw export bytes to normalised UTF-8 text: encoding, line endings, header line and delimiter."""
+
+from __future__ import annotations
+
+import codecs
+import csv
+from dataclasses import dataclass
+
+from monitor.errors import ExportError
+from monitor.ingest.profile import FALLBACK_ENCODINGS, FeedProfile
+
+_UTF8_BOM = codecs.BOM_UTF8
+_UTF16_BOMS = (codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)
+_UTF32_BOMS = (codecs.BOM_UTF32_LE, codecs.BOM_UTF32_BE)
+_SNIFF_ORDER = (",", ";", "\t")
+
+
+@dataclass(frozen=True)
+class Header:
+    """The header line: its 1-based physical line number, fields, delimiter and where the body starts."""
+
+    line: int
+    names: tuple[str, ...]
+    delimiter: str
+    body_start: int
+
+
+def decode(data: bytes, profile: FeedProfile, name: str) -> bytes:
+    """UTF-8 bytes of the export with BOM removed and every line ending turned into ``\\n``.
+
+    Raises ExportError naming the line of the first byte that does not decode.
+    """
+    enc = profile.encoding
+    out: bytes | None = None  # set when the input already is the UTF-8 we want (no copy, no re-encode)
+    if enc in ("auto", *FALLBACK_ENCODINGS, "utf-8"):
+        if data.startswith(_UTF8_BOM):
+            _strict(data[len(_UTF8_BOM):], "utf-8", name, offset=len(_UTF8_BOM), raw=data)
+            out = data[len(_UTF8_BOM):]
+        elif enc != "utf-8" and data.startswith(_UTF32_BOMS):
+            text = _strict(data, "utf-32", name, raw=data)
+        elif enc != "utf-8" and data.startswith(_UTF16_BOMS):
+            text = _strict(data, "utf-16", name, raw=data)
+        else:
+            try:
+                data.decode("utf-8")
+                out = data
+            except UnicodeDecodeError as exc:
+                if enc in ("auto", "utf-8"):
+                    raise _undecodable(exc, data, name, "utf-8", 0,
+                                       'set encoding = "latin-1" or "cp1252" in the feed profile if the '
+                                       "weigher writes 8-bit text") from None
+                text = _strict(data, enc, name, raw=data)
+    else:
+        text = _strict(data, enc, name, raw=data)
+        if text.startswith("\ufeff"):
+            text = text[1:]
+    if out is None:
+        out = text.encode("utf-8")
+    if b"\x00" in out:
+        pos = out.index(b"\x00")
+        raise ExportError("contains NUL characters — not a text export in this encoding", path=name,
+                          line=_line_of_bytes(out, pos),
+                          hint='UTF-16 files need a BOM, or set encoding = "utf-16-le" in the feed profile')
+    if b"\r" in out:
+        out = out.replace(b"\r\n", b"\n").replace(b"\r", b"\n")
+    return out
+
+
+def find_header(buf: bytes, profile: FeedProfile, name: str) -> Header:
+    """Locate the header line (after ``skip_lines``, first non-blank or first starting ``header_prefix``)."""
+    pos, line = 0, 1
+    for _ in range(profile.skip_lines):
+        nl = buf.find(b"\n", pos)
+        if nl < 0:
+            raise ExportError(f"file ends before the header: it has {line} line(s) but the profile skips "
+                              f"{profile.skip_lines}", path=name, line=line, hint="check skip_lines in the profile")
+        pos, line = nl + 1, line + 1
+    prefix = profile.header_prefix.encode("utf-8")
+    while True:
+        if pos >= len(buf):
+            what = f"no line starts with {profile.header_prefix!r}" if prefix else "no header line"
+            raise ExportError(f"{what} — the file has no header naming its columns", path=name, line=line,
+                              hint="the header must name at least 'lot' and 'value'")
+        nl = buf.find(b"\n", pos)
+        end = len(buf) if nl < 0 else nl
+        raw = buf[pos:end]
+        if (raw.startswith(prefix) if prefix else raw.strip() != b""):
+            break
+        pos, line = end + 1, line + 1
+    text = raw.decode("utf-8")
+    delim = profile.delimiter if profile.delimiter != "auto" else sniff_delimiter(text)
+    names = tuple(f.strip() for f in next(csv.reader([text], delimiter=delim, strict=False), []))
+    return Header(line=line, names=names, delimiter=delim, body_start=min(end + 1, len(buf)))
+
+
+def sniff_delimiter(header: str) -> str:
+    """The delimiter that occurs most often in the header line (outside quotes); "," on a tie or none."""
+    outside = header.split('"')[0::2]
+    counts = {d: sum(part.count(d) for part in outside) for d in _SNIFF_ORDER}
+    best = max(_SNIFF_ORDER, key=lambda d: counts[d])
+    return best if counts[best] > 0 else ","
+
+
+def _strict(data: bytes, enc: str, name: str, *, offset: int = 0, raw: bytes) -> str:
+    try:
+        return data.decode(enc)
+    except UnicodeDecodeError as exc:
+        raise _undecodable(exc, raw, name, enc, offset, "check the encoding in the feed profile") from None
+    except (LookupError, ValueError) as exc:
+        raise ExportError(f"cannot decode as {enc}: {exc}", path=name) from None
+
+
+def _undecodable(exc: UnicodeDecodeError, raw: bytes, name: str, enc: str, offset: int, hint: str) -> ExportError:
+    start = exc.start + offset
+    newline = _newline_bytes(enc, raw)
+    line = raw[:start].count(newline) + 1
+    bad = raw[start:start + 4]
+    return ExportError(f"bytes {bad!r} are not valid {enc} text", path=name, line=line, hint=hint)
+
+
+def _newline_bytes(enc: str, raw: bytes) -> bytes:
+    if enc in ("utf-16", "utf-32"):
+        enc += "-le" if raw.startswith((codecs.BOM_UTF16_LE, codecs.BOM_UTF32_LE)) else "-be"
+    try:
+        return "\n".encode(enc) or b"\n"
+    except (LookupError, ValueError, UnicodeError):
+        return b"\n"
+
+
+def _line_of_bytes(buf: bytes, pos: int) -> int:
+    part = buf[:pos]
+    return part.count(b"\n") + part.count(b"\r") - part.count(b"\r\n") + 1
