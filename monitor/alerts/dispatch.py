@@ -23,8 +23,10 @@ from monitor.alerts import outbox
 from monitor.alerts.alert import Alert
 from monitor.alerts.command_channel import CommandChannel
 from monitor.alerts.delivery import GiveUp, RetryLater, backoff_seconds
+from monitor.alerts.email_dispatch import EmailDispatch
 from monitor.alerts.log_channel import LogChannel
 from monitor.alerts.settings import AlertSettings
+from monitor.alerts.templates import TemplateSet
 
 log = logging.getLogger("monitor.alerts")
 
@@ -90,14 +92,18 @@ class Dispatcher:
             self._payload_channels["log"] = LogChannel(settings.log.path)
         if settings.command is not None:
             self._payload_channels["command"] = CommandChannel(settings.command)
+        self._shipped_templates: TemplateSet | None = None
+        self._templates: TemplateSet | None = None
         self._email: Any = None
+        if settings.email is not None:
+            self._shipped_templates = TemplateSet.load(None)
+            self._templates = (TemplateSet.load(settings.templates) if settings.templates is not None
+                               else self._shipped_templates)
         self._init_email()
 
     def _init_email(self) -> None:
-        """E-mail is wired by ``monitor.alerts.email_dispatch`` when that module is present."""
-        if self.settings.email is None:
-            return
-        log.error("e-mail channel configured but not available in this build yet")
+        if self.settings.email is not None:
+            self._email = EmailDispatch(self)
 
     # --- public API ----------------------------------------------------------------------------------
     def drain(self, now: float | None = None, *, flush: bool = False) -> int:
@@ -132,6 +138,22 @@ class Dispatcher:
         scheduler.add_job(self.drain, "interval", seconds=self.settings.drain_seconds, id="lotwarden-alerts-drain",
                           replace_existing=True, coalesce=True, max_instances=1,
                           misfire_grace_time=max(1, int(self.settings.drain_seconds * 4)))
+
+    def reload_templates(self, operator_dir: Path | None) -> None:
+        """Load and check a new template set; on TemplateError the current set stays in force (and it raises)."""
+        new = TemplateSet.load(operator_dir) if operator_dir is not None else TemplateSet.load(None)
+        with self._lock:
+            self._templates = new
+
+    def templates(self) -> tuple[TemplateSet, TemplateSet]:
+        """(the set in force, the shipped set used as fallback when an operator template fails to render)."""
+        if self._shipped_templates is None:
+            self._shipped_templates = TemplateSet.load(None)
+        return (self._templates or self._shipped_templates), self._shipped_templates
+
+    def write(self) -> contextlib.AbstractContextManager[sqlite3.Connection]:
+        """A write transaction on the dispatcher's connection."""
+        return write_tx(self._conn)
 
     def close(self) -> None:
         """Close the database connection (the daemon drains with ``flush=True`` first if it wants to)."""

@@ -107,6 +107,13 @@ CREATE TABLE IF NOT EXISTS email_recipient_sends (
     sent_at     REAL NOT NULL
 );
 CREATE INDEX IF NOT EXISTS email_recipient_sends_by ON email_recipient_sends(recipient, sent_at);
+CREATE TABLE IF NOT EXISTS email_lot_notices (
+    line        TEXT NOT NULL,
+    product     TEXT NOT NULL,
+    lot         TEXT NOT NULL,
+    notified_at REAL NOT NULL           -- unix seconds of the message that told people the lot is held
+);
+CREATE INDEX IF NOT EXISTS email_lot_notices_by ON email_lot_notices(line, product, lot, notified_at);
 CREATE TABLE IF NOT EXISTS digest_runs (
     due_at       TEXT PRIMARY KEY,      -- ISO UTC of the scheduled time this digest covers
     period_start TEXT NOT NULL,

@@ -107,3 +107,89 @@ def hold_factory() -> Callable[..., dict[str, Any]]:
 def states(db_path: Path) -> Callable[[], dict[tuple[str, str], str]]:
     """Read the delivery states of the test database."""
     return lambda: delivery_states(db_path)
+
+
+# --- a real SMTP server on loopback (aiosmtpd) -----------------------------------------------------------
+import email
+import email.policy
+import socket
+from dataclasses import dataclass, field as dc_field
+
+
+def free_port() -> int:
+    """A free TCP port on 127.0.0.1 (aiosmtpd's Controller cannot take port 0; see RELIABILITY.md)."""
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+@dataclass
+class Received:
+    """One message as the server got it: envelope and parsed content."""
+
+    mail_from: str
+    rcpt_tos: list[str]
+    raw: bytes
+    message: Any = None
+
+
+@dataclass
+class SinkHandler:
+    """aiosmtpd handler that keeps every message; ``data_reply`` lets a test answer 4xx/5xx instead."""
+
+    received: list[Received] = dc_field(default_factory=list)
+    data_reply: str = "250 OK"
+
+    async def handle_DATA(self, server: Any, session: Any, envelope: Any) -> str:
+        if not self.data_reply.startswith("250"):
+            return self.data_reply
+        raw = envelope.original_content or envelope.content
+        self.received.append(Received(envelope.mail_from, list(envelope.rcpt_tos), raw,
+                                      email.message_from_bytes(raw, policy=email.policy.default)))
+        return "250 OK"
+
+
+class SmtpServer:
+    """Start/stop an aiosmtpd Controller on 127.0.0.1 at a fixed port (so a test can restart it)."""
+
+    def __init__(self, port: int | None = None, **kwargs: Any) -> None:
+        from aiosmtpd.controller import Controller
+
+        self.port = port or free_port()
+        self.handler = SinkHandler()
+        self._kwargs = kwargs
+        self._controller_cls = Controller
+        self.controller: Any = None
+
+    @property
+    def received(self) -> list[Received]:
+        return self.handler.received
+
+    def start(self) -> "SmtpServer":
+        self.controller = self._controller_cls(self.handler, hostname="127.0.0.1", port=self.port, **self._kwargs)
+        self.controller.start()
+        return self
+
+    def stop(self) -> None:
+        if self.controller is not None:
+            self.controller.stop()
+            self.controller = None
+
+
+@pytest.fixture
+def smtp_factory() -> Iterable[Callable[..., SmtpServer]]:
+    """Make SMTP servers on loopback; all are stopped at the end of the test."""
+    made: list[SmtpServer] = []
+
+    def _make(port: int | None = None, start: bool = True, **kwargs: Any) -> SmtpServer:
+        srv = SmtpServer(port, **kwargs)
+        made.append(srv)
+        return srv.start() if start else srv
+    yield _make
+    for srv in made:
+        srv.stop()
+
+
+@pytest.fixture
+def free_port_factory() -> Callable[[], int]:
+    return free_port

@@ -1,0 +1,86 @@
+"""Builds the e-mail for one batch of alerts: rendered templates, cleaned headers, stable Message-ID, charts."""
+
+from __future__ import annotations
+
+import logging
+from email.message import EmailMessage
+from email.policy import SMTP
+from email.utils import format_datetime
+from datetime import datetime, timezone
+from typing import Any
+
+from monitor.alerts.alert import Alert
+from monitor.alerts.chart import render_chart
+from monitor.alerts.headers import clean_header_text, message_id
+from monitor.alerts.templates import CAUTION, RenderedMessage, TemplateSet, message_context
+from monitor.errors import TemplateError
+
+log = logging.getLogger("monitor.alerts")
+CHART_KINDS = ("hold",)
+
+
+def chart_for(alert: Alert) -> bytes | None:
+    """The PNG chart of a held lot, or None when the alert carries no values (or drawing fails)."""
+    d = alert.data
+    values = d.get("values")
+    if alert.kind not in CHART_KINDS or not isinstance(values, list) or not values:
+        return None
+    try:
+        return render_chart(values, target=d.get("target"), mean=d.get("mean"), ci_low=d.get("ci_low"),
+                            ci_high=d.get("ci_high"), unit=str(d.get("unit", "")),
+                            title=clean_header_text(f"line {alert.line} · {alert.product} · lot {alert.lot}"))
+    except Exception:                      # a chart is a courtesy; the notice must go out without it
+        log.exception("chart for %s could not be drawn", alert.dedup_key)
+        return None
+
+
+def render_with_fallback(kind: str, context: dict[str, Any], templates: TemplateSet,
+                         shipped: TemplateSet) -> RenderedMessage:
+    """Render with the operator's set; on a render error use the shipped set; as a last resort plain text."""
+    for tset in (templates, shipped):
+        try:
+            return tset.render(kind, context)
+        except TemplateError as exc:
+            log.error("alert template failed, falling back: %s", exc)
+    items = context["alerts"]
+    text = "\n".join(f"{it['kind']} line {it['line']} product {it['product']} lot {it['lot']}: {it['data']}"
+                     for it in items) + "\n\n" + CAUTION + "\n"
+    return RenderedMessage(subject=f"[lotwarden] {len(items)} alert(s)", text=text,
+                           html="<pre>" + text.replace("&", "&amp;").replace("<", "&lt;") + "</pre>")
+
+
+def build_message(alerts: list[Alert], *, sender: str, recipients: tuple[str, ...], now: float, folded: bool,
+                  templates: TemplateSet, shipped: TemplateSet) -> EmailMessage:
+    """One message for ``alerts`` (its own kind's templates for one alert, the group templates for several)."""
+    charts: list[tuple[str, bytes]] = []
+    items = []
+    mid = message_id([a.dedup_key for a in alerts], sender.rpartition("@")[2])
+    token = mid.strip("<>").split("@")[0]
+    for i, a in enumerate(alerts):
+        png = chart_for(a)
+        cid = None
+        if png is not None:
+            cid = f"chart{i}.{token}@lotwarden"
+            charts.append((cid, png))
+        items.append({"kind": a.kind, "dedup_key": a.dedup_key, "created_at": a.created_at, "line": a.line,
+                      "product": a.product, "lot": a.lot, "data": a.data, "chart_cid": cid})
+    generated = datetime.fromtimestamp(now, timezone.utc)
+    ctx = message_context(items, folded=folded, generated_at=generated.isoformat(timespec="seconds"))
+    kind = alerts[0].kind if len(alerts) == 1 and not folded else "group"
+    rendered = render_with_fallback(kind, ctx, templates, shipped)
+
+    msg = EmailMessage(policy=SMTP)
+    msg["Subject"] = clean_header_text(rendered.subject) or "[lotwarden] alert"
+    msg["From"] = clean_header_text(sender)
+    msg["To"] = ", ".join(clean_header_text(r) for r in recipients)
+    msg["Date"] = format_datetime(generated)
+    msg["Message-ID"] = mid
+    msg["Auto-Submitted"] = "auto-generated"
+    msg.set_content(rendered.text)
+    msg.add_alternative(rendered.html, subtype="html")
+    if charts:
+        html_part = msg.get_payload()[1]
+        for n, (cid, png) in enumerate(charts, start=1):
+            html_part.add_related(png, "image", "png", cid=f"<{cid}>", filename=f"lot-chart-{n}.png",
+                                  disposition="inline")
+    return msg

@@ -1,0 +1,172 @@
+"""Alert message templates: the shipped set in config/templates/, overridable file by file by the operator.
+
+Every template runs in a Jinja2 ``SandboxedEnvironment`` with ``StrictUndefined``; ``.html`` templates are
+autoescaped. A set is read into memory whole and checked (compiled and test-rendered) before it is used,
+so a bad edit raises ``TemplateError`` naming file and line and the caller keeps its last good set.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Mapping
+
+import jinja2
+from jinja2.sandbox import SandboxedEnvironment
+
+from monitor.alerts.alert import ALERT_KINDS
+from monitor.errors import TemplateError
+
+SHIPPED_DIR = Path(__file__).resolve().parents[2] / "config" / "templates"
+MESSAGE_KINDS = ALERT_KINDS + ("group",)
+PARTS = ("subject.txt", "body.txt", "body.html")
+CAUTION = ("lotwarden screens lots statistically; net-quantity compliance is decided under local "
+           "weights-and-measures law by the competent authority.")
+
+
+def required_names() -> list[str]:
+    """The template file names a complete set has: ``<kind>.subject.txt``, ``.body.txt``, ``.body.html``."""
+    return [f"{kind}.{part}" for kind in MESSAGE_KINDS for part in PARTS]
+
+
+def fmt_number(value: Any, digits: int = 2) -> str:
+    """A number with ``digits`` decimals, or "—" when missing / not finite."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+        return "—"
+    return f"{value:.{digits}f}"
+
+
+def fmt_p(value: Any) -> str:
+    """A p-value: 4 decimals, or "< 0.0001"."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+        return "—"
+    return "< 0.0001" if value < 1e-4 else f"{value:.4f}"
+
+
+def fmt_signed(value: Any, digits: int = 2) -> str:
+    """A signed offset, e.g. "+1.25" or "-0.40"."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+        return "—"
+    return f"{value:+.{digits}f}"
+
+
+SAMPLE_DIGEST = {"period_start": "2026-11-30T05:00:00+00:00", "period_end": "2026-12-01T05:00:00+00:00",
+                 "period_start_local": "2026-11-30 06:00", "period_end_local": "2026-12-01 06:00",
+                 "timezone": "Europe/Berlin",
+                 "lines": [{"line": "L1", "products": [{"product": "JAM-340", "unit": "g", "lots": 3, "passed": 2,
+                                                        "held": 1, "reviewed": 0, "mean_offset": 0.4}]}],
+                 "files": {"done": 3, "rejected": 1, "duplicate": 0},
+                 "rejected_files": [{"path": "exports/x.csv", "reason": "no lot column", "processed_at": ""}]}
+
+
+def sample_context(kind: str = "hold") -> dict[str, Any]:
+    """A context with every field the shipped templates use (for the load-time test render)."""
+    if kind == "digest":
+        item = {"kind": "digest", "dedup_key": "digest|x", "created_at": "2026-12-01T05:00:00+00:00", "line": "",
+                "product": "", "lot": "", "data": dict(SAMPLE_DIGEST), "chart_cid": None}
+        return message_context([item], folded=False, generated_at="2026-12-01T05:00:00+00:00")
+    data = {"file": "exports/L2-A1001.csv", "files": ["exports/L2-A1001.csv"], "line": "L2", "product": "OAT-500",
+            "lot": "A1001", "rule": "oat-500", "rule_version": "0000", "n": 10, "mean": 497.4, "sd": 0.6,
+            "target": 500.0, "unit": "g", "alternative": "two-sided", "alpha": 0.05, "test": "t",
+            "statistic": -12.7, "df": 9.0, "p_value": 1e-6, "ci_low": 497.0, "ci_high": 497.9,
+            "normality": {"test": "shapiro", "statistic": 0.97, "p_value": 0.8, "passed": True, "note": ""},
+            "power": 0.9, "n_for_power": 8, "verdict": "hold", "reason": "mean below target", "heads": [],
+            "values": [497.0, 498.0], "path": "exports/x.csv", "error": "example", "channel": "email"}
+    item = {"kind": "hold", "dedup_key": "hold|L2|OAT-500|A1001|0000", "created_at": "2026-12-01T06:00:00+00:00",
+            "line": "L2", "product": "OAT-500", "lot": "A1001", "data": data, "chart_cid": "chart0"}
+    return message_context([item], folded=False, generated_at="2026-12-01T06:00:00+00:00")
+
+
+def message_context(items: list[Mapping[str, Any]], *, folded: bool, generated_at: str) -> dict[str, Any]:
+    """The context every template gets: ``alerts`` (list), ``alert`` and ``data`` (the first), counts."""
+    first = items[0]
+    kinds: dict[str, int] = {}
+    for it in items:
+        kinds[it["kind"]] = kinds.get(it["kind"], 0) + 1
+    return {"alerts": list(items), "alert": first, "data": first["data"], "count": len(items), "kinds": kinds,
+            "folded": folded, "generated_at": generated_at, "caution": CAUTION,
+            "lines": sorted({it["line"] for it in items if it["line"]})}
+
+
+@dataclass(frozen=True)
+class RenderedMessage:
+    """Subject (not yet header-cleaned), plain-text body and HTML body of one message."""
+
+    subject: str
+    text: str
+    html: str
+
+
+class TemplateSet:
+    """One checked, in-memory set of templates. Build with ``TemplateSet.load(operator_dir)``."""
+
+    def __init__(self, sources: dict[str, str], origins: dict[str, Path]) -> None:
+        self._origins = origins
+        self._env = SandboxedEnvironment(
+            loader=jinja2.DictLoader(sources), undefined=jinja2.StrictUndefined,
+            autoescape=jinja2.select_autoescape(enabled_extensions=("html",), default_for_string=False),
+            trim_blocks=True, lstrip_blocks=True, keep_trailing_newline=True, auto_reload=False)
+        self._env.filters.update(num=fmt_number, pvalue=fmt_p, signed=fmt_signed)
+        self._compiled: dict[str, jinja2.Template] = {}
+        for name in sorted(sources):
+            self._compiled[name] = self._compile(name)
+        for kind in MESSAGE_KINDS:
+            sample = sample_context(kind)
+            for part in PARTS:
+                self._render(f"{kind}.{part}", sample)
+
+    @classmethod
+    def load(cls, operator_dir: Path | None = None, shipped_dir: Path = SHIPPED_DIR) -> "TemplateSet":
+        """Read the shipped set, let same-named files in ``operator_dir`` win, check everything."""
+        sources: dict[str, str] = {}
+        origins: dict[str, Path] = {}
+        for folder, is_operator in ((shipped_dir, False), (operator_dir, True)):
+            if folder is None:
+                continue
+            if not folder.is_dir():
+                raise TemplateError("template folder does not exist or is not a folder", path=folder,
+                                    key="alerts.templates" if is_operator else None)
+            for f in sorted(folder.iterdir()):
+                if not f.is_file() or f.suffix not in (".txt", ".html") or f.name.startswith("."):
+                    continue
+                if is_operator and not f.name.startswith("_") and f.name not in required_names():
+                    raise TemplateError(f"unknown template name {f.name!r}", path=f,
+                                        hint="use a shipped name (e.g. hold.subject.txt, group.body.html) or "
+                                             "start a partial's name with '_'")
+                try:
+                    sources[f.name] = f.read_text(encoding="utf-8")
+                except (OSError, UnicodeDecodeError) as exc:
+                    raise TemplateError(f"cannot read template: {exc}", path=f) from None
+                origins[f.name] = f
+        missing = [n for n in required_names() if n not in sources]
+        if missing:
+            raise TemplateError("template set is incomplete: missing " + ", ".join(missing), path=shipped_dir)
+        return cls(sources, origins)
+
+    def origin(self, name: str) -> Path | None:
+        """The file a template name was read from."""
+        return self._origins.get(name)
+
+    def render(self, kind: str, context: Mapping[str, Any]) -> RenderedMessage:
+        """Render the three parts for ``kind`` ("group" for a grouped message); raises TemplateError."""
+        return RenderedMessage(*(self._render(f"{kind}.{part}", context) for part in PARTS))
+
+    def _compile(self, name: str) -> jinja2.Template:
+        try:
+            return self._env.get_template(name)
+        except jinja2.TemplateSyntaxError as exc:
+            raise TemplateError(f"template syntax error: {exc.message}", path=self._origins.get(name, name),
+                                line=exc.lineno) from None
+
+    def _render(self, name: str, context: Mapping[str, Any]) -> str:
+        try:
+            return self._compiled[name].render(**context)
+        except jinja2.TemplateSyntaxError as exc:
+            raise TemplateError(f"template syntax error: {exc.message}",
+                                path=self._origins.get(exc.name or name, name), line=exc.lineno) from None
+        except jinja2.TemplateError as exc:
+            raise TemplateError(f"template fails to render: {exc}", path=self._origins.get(name, name)) from None
+        except Exception as exc:   # a sandbox template may raise anything a filter or operator raises
+            raise TemplateError(f"template fails to render: {type(exc).__name__}: {exc}",
+                                path=self._origins.get(name, name)) from None
