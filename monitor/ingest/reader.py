@@ -139,13 +139,8 @@ class _Rows:
             marker = pc.equal(lot, prof.end_of_lot).to_numpy(zero_copy_only=False)
         self.code[marker] = -1
         self.code[self._blank(lot)] = -3
-        multiline = np.zeros(self.n, dtype=bool)
-        for canon in ("lot", "product", "line", "head") if self.raw.quoted else ():
-            t = self.text(canon)
-            if t is not None:
-                multiline |= pc.match_substring(t, "\n").to_numpy(zero_copy_only=False)
-        self.flag(pc.equal(pc.binary_length(lot), 0).to_numpy(zero_copy_only=False), "lot", "empty lot code")
-        self.flag(multiline, "lot", "a text field spans several lines (unbalanced quote?)")
+        self.flag(pc.equal(pc.binary_length(lot), 0).to_numpy(zero_copy_only=False), "lot",
+                  "empty lot code — every measurement needs its lot")
         main = "value" if self.kind == "values" else "mean"
         dropped = np.zeros(self.n, dtype=bool)
         if prof.drop_values:
@@ -313,4 +308,7 @@ def _empty(columns: tuple[str, ...]) -> pd.DataFrame:
 
 
 def _short(text: str, limit: int = 80) -> str:
+    """Raw text for a one-line message: control characters escaped, long text cut."""
+    if not text.isprintable():
+        text = "".join(c if c.isprintable() else repr(c)[1:-1] for c in text)
     return text if len(text) <= limit else text[:limit - 1] + "…"

@@ -69,15 +69,18 @@ def split_body(buf: bytes, header: Header, name: str) -> RawTable:
         for num, text in invalid:
             extra[num] = text.count("\n")
     first_line = header.line + np.arange(total + 1, dtype=np.int64) + np.concatenate(([0], np.cumsum(extra)[:-1]))
+    if extra.any():  # a missing closing quote swallows every row up to the next quote: refuse, never lose rows
+        k = int(np.flatnonzero(extra)[0])
+        raise ExportError(f"a quoted field starting on this line runs over {int(extra[k]) + 1} lines; line breaks "
+                          "inside fields are not accepted, since a missing closing quote would swallow the rows "
+                          "after it", path=name, line=int(first_line[k]),
+                          hint='check the quote characters (") in this row')
     lines = first_line[valid_rec]
 
     problems: list[RawProblem] = []
     recovered: list[tuple[int, list[str]]] = []
     for num, text in invalid:
         line = int(first_line[num])
-        if "\n" in text:
-            raise ExportError("a quoted field opened on this line is never closed; the lines after it would be "
-                              "lost", path=name, line=line, hint='check the quote characters (") in this row')
         fields = next(csv.reader([text], delimiter=header.delimiter, strict=False), [])
         if all(not f.strip() for f in fields):
             continue
