@@ -21,6 +21,19 @@ __all__ = ["MAX_PLAN_N", "n_for_power", "plan_sample_size", "power", "power_curv
 MAX_PLAN_N = 10 ** 9          # beyond this, sample-size planning reports "not reachable"
 
 
+def _nct_cdf(df: np.ndarray, nc: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """Noncentral t cdf; where ``nctdtr`` gives NaN far in a tail, the complement of the mirrored cdf."""
+    df, nc, t = np.broadcast_arrays(np.asarray(df, dtype=np.float64), np.asarray(nc, dtype=np.float64),
+                                    np.asarray(t, dtype=np.float64))
+    out = np.asarray(special.nctdtr(df, nc, t), dtype=np.float64)
+    bad = np.isnan(out) & ~(np.isnan(df) | np.isnan(nc) | np.isnan(t))
+    if bad.any():
+        out = out.copy()
+        alt = 1.0 - special.nctdtr(df[bad], -nc[bad], -t[bad])
+        out[bad] = np.where(np.isnan(alt), np.where(t[bad] < nc[bad], 0.0, 1.0), alt)
+    return out
+
+
 def power(n: np.ndarray | int, shift: float | np.ndarray, sd: float | np.ndarray, alpha: float,
           alternative: str = "two-sided", known_sd: bool = False) -> np.ndarray | float:
     """Probability that the test rejects when the true mean is ``shift`` away from target.
@@ -63,9 +76,9 @@ def power(n: np.ndarray | int, shift: float | np.ndarray, sd: float | np.ndarray
             df = nn - 1.0
             crit = np.asarray(critical_value(a, "greater", np.broadcast_to(df, np.broadcast(df, delta).shape)))
             # P(T' > c) = P(T'' < −c) with T'' noncentral t of noncentrality −δ: accurate in both tails
-            result = special.nctdtr(df, -delta, -crit)
+            result = _nct_cdf(df, -delta, -crit)
             if not one_sided:
-                result = result + special.nctdtr(df, delta, -crit)
+                result = result + _nct_cdf(df, delta, -crit)
         result = np.minimum(result, 1.0)
     return result if np.ndim(result) else float(result)
 
