@@ -128,6 +128,15 @@ class Dispatcher:
                     log.exception("outbox drain of %s failed unexpectedly", name)
             return done
 
+    def tick(self) -> None:
+        """The periodic job: raise a due (or missed) digest, then drain. Never raises."""
+        if self.settings.digest is not None:
+            try:
+                self.run_digest()
+            except Exception:
+                log.exception("digest check failed")
+        self.drain()
+
     def enqueue(self, alert: Alert, channels: tuple[str, ...] | None = None) -> bool:
         """Store ``alert`` in its own transaction (for alerts the dispatcher itself raises)."""
         with self._lock, write_tx(self._conn):
@@ -135,9 +144,13 @@ class Dispatcher:
 
     def schedule(self, scheduler: Any) -> None:
         """Add the periodic drain (which also flushes due e-mail groups) and the daily digest to ``scheduler``."""
-        scheduler.add_job(self.drain, "interval", seconds=self.settings.drain_seconds, id="lotwarden-alerts-drain",
+        scheduler.add_job(self.tick, "interval", seconds=self.settings.drain_seconds, id="lotwarden-alerts-drain",
                           replace_existing=True, coalesce=True, max_instances=1,
                           misfire_grace_time=max(1, int(self.settings.drain_seconds * 4)))
+        if self.settings.digest is not None:
+            from monitor.alerts.digest import schedule_digest
+
+            schedule_digest(self, scheduler)
 
     def reload_templates(self, operator_dir: Path | None) -> None:
         """Load and check a new template set; on TemplateError the current set stays in force (and it raises)."""
@@ -164,6 +177,19 @@ class Dispatcher:
     @property
     def conn(self) -> sqlite3.Connection:
         return self._conn
+
+    @property
+    def lock(self) -> threading.RLock:
+        return self._lock
+
+    def clock(self) -> float:
+        return self._clock()
+
+    def run_digest(self, now: float | None = None) -> bool:
+        """Raise the digest for the latest scheduled time unless already raised (see ``monitor.alerts.digest``)."""
+        from monitor.alerts.digest import run_digest
+
+        return run_digest(self, now)
 
     @property
     def rng(self) -> random.Random:

@@ -1,0 +1,96 @@
+"""Templates: operator files override shipped ones; sandboxed, autoescaped, strict; a bad edit keeps the old set."""
+
+from __future__ import annotations
+
+
+import pytest
+
+from monitor.alerts.dispatch import Dispatcher
+from monitor.alerts.settings import AlertSettings, EmailSettings
+from monitor.alerts.templates import SHIPPED_DIR, TemplateSet, required_names, sample_context
+from monitor.errors import TemplateError
+
+
+def test_shipped_set_is_complete_and_carries_the_caution():
+    """Every kind has subject, text and HTML; hold, review, group and digest bodies carry the legal caution."""
+    names = {p.name for p in SHIPPED_DIR.iterdir()}
+    assert set(required_names()) <= names
+    ts = TemplateSet.load()
+    for kind in ("hold", "review", "group", "digest"):
+        m = ts.render(kind, sample_context(kind))
+        assert "competent authority" in m.text and "competent authority" in m.html
+
+
+def test_operator_file_wins_and_html_is_escaped(tmp_path):
+    """A same-named operator file replaces the shipped one; data in HTML bodies is escaped."""
+    (tmp_path / "hold.body.html").write_text("<p>{{ alert.lot }}</p>")
+    (tmp_path / "hold.subject.txt").write_text("Brackenfield hold {{ alert.lot }}")
+    ts = TemplateSet.load(tmp_path)
+    ctx = sample_context()
+    ctx["alert"] = dict(ctx["alert"], lot="<script>x</script>")
+    m = ts.render("hold", ctx)
+    assert m.subject == "Brackenfield hold <script>x</script>"       # plain text: not escaped (header cleaned later)
+    assert m.html == "<p>&lt;script&gt;x&lt;/script&gt;</p>"
+
+
+@pytest.mark.parametrize("body, expect", [
+    ("{% if alert.lot %}unclosed", "syntax"),
+    ("{{ alert.no_such_field }}", "render"),
+    ("{{ alert.__class__.__mro__ }}", "render"),                     # sandbox: no access to internals
+    ("{{ ''.__class__.__subclasses__() }}", "render"),
+])
+def test_bad_operator_template_is_a_template_error_naming_the_file(tmp_path, body, expect):
+    """Syntax errors, undefined names and unsafe attribute access fail at load with file (and line)."""
+    f = tmp_path / "hold.body.txt"
+    f.write_text("first line\n" + body)
+    with pytest.raises(TemplateError) as err:
+        TemplateSet.load(tmp_path)
+    assert err.value.path == str(f)
+    if expect == "syntax":
+        assert err.value.line == 2
+
+
+def test_unknown_operator_template_name_is_refused(tmp_path):
+    """A misspelt file name is an error listing what is allowed, not silently ignored."""
+    (tmp_path / "hlod.subject.txt").write_text("x")
+    with pytest.raises(TemplateError, match="unknown template name"):
+        TemplateSet.load(tmp_path)
+
+
+def test_reload_with_broken_template_keeps_the_last_good_set(db_path, tmp_path, put, alert_factory, smtp_factory):
+    """After a failed reload the dispatcher still sends with the operator's previous good templates."""
+    tdir = tmp_path / "tpl"
+    tdir.mkdir()
+    (tdir / "hold.subject.txt").write_text("GOOD {{ alert.lot }}")
+    srv = smtp_factory()
+    em = EmailSettings(host="127.0.0.1", port=srv.port, security="none", sender="lotwarden@brackenfield.example",
+                       recipients=("qa@brackenfield.example",), timeout=10)
+    s = AlertSettings(email=em, templates=tdir, group_window_seconds=0)
+    d = Dispatcher(db_path, s)
+    try:
+        (tdir / "hold.subject.txt").write_text("BROKEN {{ alert.lot ")
+        with pytest.raises(TemplateError):
+            d.reload_templates(tdir)
+        put(alert_factory(lot="K1"), ["email"])
+        assert d.drain(now=1_796_162_500.0) == 1
+    finally:
+        d.close()
+    assert srv.received[0].message["Subject"] == "GOOD K1"
+
+
+def test_render_failure_at_send_falls_back_to_shipped_templates(db_path, tmp_path, put, alert_factory,
+                                                                smtp_factory):
+    """An operator template that fails on real data (a field the sample had) does not lose the alert."""
+    tdir = tmp_path / "tpl"
+    tdir.mkdir()
+    (tdir / "file-rejected.subject.txt").write_text("rejected {{ data.path }}")
+    srv = smtp_factory()
+    em = EmailSettings(host="127.0.0.1", port=srv.port, security="none", sender="lotwarden@brackenfield.example",
+                       recipients=("qa@brackenfield.example",), timeout=10)
+    d = Dispatcher(db_path, AlertSettings(email=em, templates=tdir, group_window_seconds=0))
+    try:
+        put(alert_factory("file-rejected", lot="", data={"reason": "no lot column"}, key="fr|1"), ["email"])
+        assert d.drain(now=1_796_162_500.0) == 1
+    finally:
+        d.close()
+    assert srv.received[0].message["Subject"].startswith("[lotwarden] export rejected")
