@@ -1,0 +1,620 @@
+"""The run loop: wires config, rules, state store, intake, watcher, scheduler and dispatcher, and reloads.
+
+One thread (the caller of :meth:`Daemon.run`) owns the state store and the intake: it takes finished files
+from the settle tracker and processes them one at a time, closes idle lots and reloads config and rules.
+Scheduler jobs and observer callbacks only post hints and requests and wake that thread.
+"""
+
+from __future__ import annotations
+
+import concurrent.futures
+import hashlib
+import logging
+import queue
+import os
+import signal
+import sys
+import threading
+import time
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Any, Callable, TextIO
+
+from monitor.alerts.alert import Alert
+from monitor.errors import LotwardenError
+from monitor.daemon.watcher import FolderWatcher, NameFilter, SettleTracker, scan
+
+log = logging.getLogger("lotwarden.daemon")
+
+IDLE_CHECK_SECONDS = 30.0
+SUPERVISE_SECONDS = 5.0
+RELOAD_CHECK_SECONDS = 2.0
+STOP_DRAIN_SECONDS = 2.0
+PAUSE_ENV = "LOTWARDEN_PAUSE_AFTER_FILES"   # test hook: stop taking files after n (crash tests)
+
+EventFn = Callable[[str, dict[str, Any]], None]
+
+
+# --------------------------------------------------------------------------------------------- logging
+class OneLineFormatter(logging.Formatter):
+    """ISO-8601 UTC time, level, logger, message — and any traceback folded onto the same line."""
+
+    converter = time.gmtime
+
+    def __init__(self) -> None:
+        super().__init__("%(asctime)s %(levelname)s %(name)s: %(message)s", "%Y-%m-%dT%H:%M:%SZ")
+
+    def format(self, record: logging.LogRecord) -> str:
+        text = super().format(record)
+        return text.replace("\r", "").replace("\n", " | ")
+
+
+def configure_logging(stream: TextIO | None = None, level: int = logging.INFO) -> logging.Handler:
+    """Send the project's log records (and the scheduler's warnings) to ``stream``, one line each."""
+    handler = logging.StreamHandler(stream or sys.stderr)
+    handler.setFormatter(OneLineFormatter())
+    for name in ("lotwarden", "monitor"):
+        lg = logging.getLogger(name)
+        lg.setLevel(level)
+        lg.addHandler(handler)
+        lg.propagate = False
+    for name in ("apscheduler", "watchdog"):
+        lg = logging.getLogger(name)
+        lg.setLevel(logging.WARNING)
+        lg.addHandler(handler)
+        lg.propagate = False
+    handler.addFilter(_drop_shutdown_race)
+    return handler
+
+
+def _drop_shutdown_race(record: logging.LogRecord) -> bool:
+    """watchdog 7's inotify emitter logs this error when it is stopped while reading; it is harmless."""
+    return not (record.name.startswith("watchdog") and "called when the thread is inactive" in record.getMessage())
+
+
+def remove_logging(handler: logging.Handler) -> None:
+    for name in ("lotwarden", "monitor", "apscheduler", "watchdog"):
+        logging.getLogger(name).removeHandler(handler)
+
+
+def utc_now_iso() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+# --------------------------------------------------------------------------------------------- reload
+@dataclass(frozen=True)
+class Fingerprint:
+    """What the reload check compares: (name, size, mtime_ns) of the config and every rule file."""
+
+    stats: tuple[tuple[str, int, int], ...]
+    rule_names: frozenset[str] = field(default_factory=frozenset)
+
+
+def take_fingerprint(config_path: Path, rules_dir: Path) -> Fingerprint:
+    """Stat the config file and the ``*.toml`` files of ``rules_dir`` (missing ones are simply absent)."""
+    out: list[tuple[str, int, int]] = []
+    paths = [config_path]
+    try:
+        paths += sorted(p for p in Path(rules_dir).glob("*.toml") if not p.name.startswith("."))
+    except OSError:
+        pass
+    for p in paths:
+        try:
+            st = p.stat()
+        except OSError:
+            continue
+        out.append((str(p), int(st.st_size), int(st.st_mtime_ns)))
+    names = frozenset(Path(n).name for n, _, _ in out if n != str(config_path))
+    return Fingerprint(tuple(out), names)
+
+
+def content_hash(paths: list[Path]) -> str:
+    """SHA-256 over the names and bytes of ``paths`` (unreadable files hash their error)."""
+    h = hashlib.sha256()
+    for p in paths:
+        h.update(str(p).encode() + b"\0")
+        try:
+            h.update(p.read_bytes())
+        except OSError as exc:
+            h.update(f"<{exc.__class__.__name__}>".encode())
+        h.update(b"\0")
+    return h.hexdigest()
+
+
+# --------------------------------------------------------------------------------------------- daemon
+class Daemon:
+    """The unattended service. ``run()`` blocks until ``stop()`` (or SIGTERM/SIGINT) and returns 0,
+    or returns 2 when config or rules are bad at start-up."""
+
+    def __init__(self, config_path: str | Path, *, on_event: EventFn | None = None,
+                 log_stream: TextIO | None = None, configure_log: bool = True) -> None:
+        self.config_path = Path(config_path)
+        self.on_event = on_event
+        self.log_stream = log_stream
+        self.configure_log = configure_log
+        self.ready = threading.Event()        # set once watching and the first scan is done
+        self.stopped = threading.Event()
+        self.files_done = 0
+        self._stop = threading.Event()
+        self._wake = threading.Event()
+        self._reload_requested = False        # SIGHUP: reload whatever is on disk, accept removals
+        self._reload_check_due = False
+        self._idle_due = False
+        self._rescan_due = False
+        self._config: Any = None
+        self._rules: list[Any] = []
+        self._store: Any = None
+        self._intake: Any = None
+        self._dispatcher: Any = None
+        self._scheduler: Any = None
+        self._watcher: FolderWatcher | None = None
+        self._tracker: SettleTracker | None = None
+        self._names = NameFilter()
+        self._applied_fp: Fingerprint | None = None
+        self._seen_fp: Fingerprint | None = None
+        self._dispatch_jobs: list[str] = []
+        self._started_at = utc_now_iso()
+        self._pause_after = int(os.environ.get(PAUSE_ENV, "0") or 0)
+        self.idle_check_seconds = IDLE_CHECK_SECONDS       # job intervals; tests may shorten them
+        self.supervise_seconds = SUPERVISE_SECONDS
+        self.reload_check_seconds = RELOAD_CHECK_SECONDS
+        self._calls: queue.SimpleQueue[tuple[Callable[[], Any], concurrent.futures.Future[Any]]] = \
+            queue.SimpleQueue()
+
+    # ------------------------------------------------------------------ control from other threads
+    def stop(self) -> None:
+        """Ask the run loop to finish the file in hand and exit."""
+        self._stop.set()
+        self._wake.set()
+
+    def request_reload(self) -> None:
+        """Reload config and rules now (what SIGHUP does)."""
+        self._reload_requested = True
+        self._wake.set()
+
+    def call_soon(self, fn: Callable[["Daemon"], Any]) -> "concurrent.futures.Future[Any]":
+        """Run ``fn(daemon)`` on the loop thread (which owns intake and store); returns its future."""
+        fut: concurrent.futures.Future[Any] = concurrent.futures.Future()
+        self._calls.put((lambda: fn(self), fut))
+        self._wake.set()
+        return fut
+
+    def close_all_lots(self) -> Any:
+        """Close and judge every open lot now (loop thread only; use via ``call_soon``)."""
+        return self._close_idle(idle_seconds_override=0)
+
+    @property
+    def config(self) -> Any:
+        """The config in force (the last good one)."""
+        return self._config
+
+    @property
+    def store_path(self) -> Path | None:
+        return None if self._store is None else Path(self._store.path)
+
+    # ------------------------------------------------------------------ run
+    def run(self) -> int:
+        handler = configure_logging(self.log_stream) if self.configure_log else None
+        old_signals = self._install_signals()
+        try:
+            return self._run()
+        finally:
+            self._restore_signals(old_signals)
+            if handler is not None:
+                remove_logging(handler)
+            self.stopped.set()
+
+    def _run(self) -> int:
+        from monitor.daemon.config import load_config
+
+        try:
+            config = load_config(self.config_path)
+            rules = self._load_rules(config)
+        except LotwardenError as exc:
+            log.error("cannot start: %s", exc)
+            print(f"lotwarden: {exc}", file=sys.stderr)
+            return 2
+        self._config, self._rules = config, rules
+        self._applied_fp = self._seen_fp = take_fingerprint(self.config_path, config.rules_dir)
+        try:
+            self._open(config, rules)
+        except LotwardenError as exc:
+            log.error("cannot start: %s", exc)
+            print(f"lotwarden: {exc}", file=sys.stderr)
+            self._close_quietly()
+            return 2
+        try:
+            self._loop()
+        finally:
+            self._shutdown()
+        return 0
+
+    # ------------------------------------------------------------------ start-up
+    def _load_rules(self, config: Any) -> list[Any]:
+        from monitor.rulebook import load_rules
+
+        return load_rules(config.rules_dir)
+
+    def _open(self, config: Any, rules: list[Any]) -> None:
+        from monitor.daemon.intake import Intake
+        from monitor.daemon.store import Store
+
+        for folder in (config.state.folder, config.state.archive, config.state.quarantine):
+            Path(folder).mkdir(parents=True, exist_ok=True)
+        self._store = Store.open(config.state.folder)
+        self._intake = Intake(config, rules, self._store)
+        recovered = self._intake.recover()
+        if recovered:
+            log.info("recovered after an unclean stop: %s", recovered)
+        self._emit_alert("daemon-started", f"daemon-started|{self._started_at}",
+                         {"config": str(self.config_path), "rules": [r.name for r in rules],
+                          "started_at": self._started_at})
+        self._dispatcher = self._make_dispatcher(config)
+        self._apply_watch(config)
+        self._start_scheduler(config)
+        log.info("started: config %s (version %s), %d rules, %d profiles, channels %s, watching %s (%s, "
+                 "settle %gs)", self.config_path, getattr(config, "version", "?"), len(rules),
+                 len(config.profiles), ",".join(config.alerts.channels) or "none", config.watch.folder,
+                 self._watcher.kind if self._watcher else "?", config.watch.settle_seconds)
+        self._event("started", {"config": str(self.config_path), "rules": len(rules)})
+        self.ready.set()
+
+    def _make_dispatcher(self, config: Any) -> Any:
+        try:
+            from monitor.alerts.dispatch import Dispatcher
+        except ImportError:
+            log.warning("alert dispatcher not installed: alerts stay in the outbox until it is")
+            return None
+        try:
+            return Dispatcher(self._store_db_path(), config.alerts)
+        except LotwardenError as exc:
+            log.error("alert delivery not started: %s", exc)
+            return None
+
+    def _store_db_path(self) -> Path:
+        path = getattr(self._store, "path", None) or getattr(self._store, "db_path", None)
+        return Path(path) if path is not None else Path(self._config.state.folder) / "lotwarden.db"
+
+    def _marker_for(self, path: Path) -> str | None:
+        try:
+            from monitor.ingest.profile import profile_for
+        except ImportError:
+            return None
+        try:
+            prof = profile_for(path, self._config.profiles)
+        except Exception:  # a profile lookup problem must not stop the watcher; intake reports it
+            return None
+        return getattr(prof, "marker_suffix", None) or None
+
+    def _apply_watch(self, config: Any) -> None:
+        """(Re)build name filter, tracker and observer from ``config.watch``; then scan."""
+        w = config.watch
+        suffixes = tuple(s for s in (getattr(p, "marker_suffix", None) for p in config.profiles) if s)
+        self._names = NameFilter(include=tuple(w.include), ignore=tuple(w.ignore), marker_suffixes=suffixes)
+        old = self._tracker.pending() if self._tracker else []
+        self._tracker = SettleTracker(w.settle_seconds, marker_for=self._marker_for)
+        self._tracker.hint_many(p for p in old if self._names.accepts(p.name))
+        if self._watcher is not None:
+            self._watcher.stop()
+        Path(w.folder).mkdir(parents=True, exist_ok=True)
+        self._watcher = FolderWatcher(w.folder, w.polling, w.poll_interval, self._on_hint)
+        self._watcher.start()   # observer first, then scan: nothing dropped in between is missed
+        self._rescan()
+
+    def _start_scheduler(self, config: Any) -> None:
+        from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_MISSED
+        from apscheduler.schedulers.background import BackgroundScheduler
+
+        sched = BackgroundScheduler(timezone=timezone.utc, job_defaults={
+            "coalesce": True, "max_instances": 1, "misfire_grace_time": 300})
+        sched.add_listener(self._on_job_event, EVENT_JOB_ERROR | EVENT_JOB_MISSED)
+        sched.add_job(self._request_rescan, "interval", seconds=config.watch.rescan_seconds, id="rescan")
+        sched.add_job(self._request_idle, "interval", seconds=self.idle_check_seconds, id="close-idle")
+        sched.add_job(self._supervise, "interval", seconds=self.supervise_seconds, id="supervise")
+        sched.add_job(self._request_reload_check, "interval", seconds=self.reload_check_seconds, id="reload-check")
+        sched.start()
+        self._scheduler = sched
+        self._schedule_dispatcher()
+
+    def _schedule_dispatcher(self) -> None:
+        if self._dispatcher is None or self._scheduler is None:
+            return
+        before = {j.id for j in self._scheduler.get_jobs()}
+        self._dispatcher.schedule(self._scheduler)
+        self._dispatch_jobs = [j.id for j in self._scheduler.get_jobs() if j.id not in before]
+
+    # ------------------------------------------------------------------ callbacks (other threads)
+    def _on_hint(self, path: Path, moved: bool) -> None:
+        target = self._names.export_for(path)
+        if target is not None and self._tracker is not None:
+            self._tracker.hint(target, moved)
+            self._wake.set()
+
+    def _on_job_event(self, event: Any) -> None:
+        if getattr(event, "exception", None) is not None:
+            log.error("scheduled job %s failed: %r", event.job_id, event.exception)
+        else:
+            log.warning("scheduled job %s missed its run time", event.job_id)
+
+    def _request_rescan(self) -> None:
+        self._rescan()
+
+    def _request_idle(self) -> None:
+        self._idle_due = True
+        self._wake.set()
+
+    def _request_reload_check(self) -> None:
+        self._reload_check_due = True
+        self._wake.set()
+
+    def _supervise(self) -> None:
+        w = self._watcher
+        if w is not None and not self._stop.is_set() and not w.is_alive():
+            log.error("folder observer on %s died; restarting it and rescanning", w.folder)
+            w.restart()
+            self._rescan()
+
+    def _rescan(self) -> None:
+        if self._tracker is None or self._config is None:
+            return
+        found = scan(Path(self._config.watch.folder), self._names)
+        if found:
+            self._tracker.hint_many(found)
+            self._wake.set()
+
+    # ------------------------------------------------------------------ the loop (owner thread)
+    def _loop(self) -> None:
+        assert self._tracker is not None
+        while not self._stop.is_set():
+            self._wake.clear()
+            if self._reload_requested or self._reload_check_due:
+                forced, self._reload_requested, self._reload_check_due = self._reload_requested, False, False
+                self._check_reload(forced)
+            if self._idle_due:
+                self._idle_due = False
+                self._close_idle()
+            self._run_calls()
+            if not self._paused():
+                for path in self._tracker.look():
+                    self._process(path)
+                    if self._stop.is_set() or self._paused():
+                        break
+            pending = len(self._tracker)
+            settle = self._config.watch.settle_seconds
+            timeout = min(0.25, max(0.05, settle / 5)) if pending and not self._paused() else 5.0
+            self._wake.wait(timeout)
+
+    def _run_calls(self) -> None:
+        while True:
+            try:
+                fn, fut = self._calls.get_nowait()
+            except queue.Empty:
+                return
+            if not fut.set_running_or_notify_cancel():
+                continue
+            try:
+                fut.set_result(fn())
+            except BaseException as exc:  # handed to the caller through the future
+                fut.set_exception(exc)
+
+    def _kick_drain(self) -> None:
+        """Bring the dispatcher's drain job forward so a new alert goes out now, not at the next tick."""
+        sched = self._scheduler
+        if sched is None:
+            return
+        for job_id in self._dispatch_jobs:
+            if "drain" in job_id:
+                try:
+                    sched.modify_job(job_id, next_run_time=datetime.now(timezone.utc))
+                except Exception:  # the job may be running or gone; the next tick drains anyway
+                    pass
+
+    def _paused(self) -> bool:
+        return bool(self._pause_after) and self.files_done >= self._pause_after
+
+    def _process(self, path: Path) -> None:
+        self._event("file-finished", {"path": str(path)})
+        try:
+            outcome = self._intake.process(path)
+        except Exception:  # intake never raises for bad data; anything else is a bug we survive
+            log.exception("processing %s failed unexpectedly; it stays in the drop folder for a retry", path)
+            return
+        self.files_done += 1
+        describe = getattr(outcome, "describe", None)
+        text = describe() if callable(describe) else repr(outcome)
+        status = getattr(outcome, "status", "")
+        (log.warning if status in ("rejected", "duplicate", "unreadable", "vanished") else log.info)("%s", text)
+        if getattr(outcome, "alerts", True):   # new alerts: deliver now rather than at the next drain tick
+            self._kick_drain()
+        self._move_marker(path, outcome)
+        self._event("file-processed", {"path": str(path), "outcome": outcome})
+        if self._paused():
+            log.warning("%s=%d reached: taking no more files", PAUSE_ENV, self._pause_after)
+
+    def _move_marker(self, path: Path, outcome: Any) -> None:
+        """Move the profile's marker file next to where its export went (nothing is deleted)."""
+        suffix = self._marker_for(path)
+        if not suffix:
+            return
+        marker = Path(str(path) + suffix)
+        dest_of_export = getattr(outcome, "archived_path", None) or getattr(outcome, "moved_to", None)
+        if not marker.exists() or not dest_of_export:
+            return
+        dest = Path(dest_of_export).parent / marker.name
+        n = 1
+        while dest.exists():
+            dest = dest.with_name(f"{marker.name}.{n}")
+            n += 1
+        try:
+            os.replace(marker, dest)
+        except OSError as exc:
+            log.warning("cannot move marker %s: %s", marker, exc)
+
+    def _close_idle(self, idle_seconds_override: float | None = None) -> Any:
+        try:
+            result = self._intake.close_idle(idle_seconds_override=idle_seconds_override)
+        except Exception:
+            log.exception("closing idle lots failed; will try again")
+            return None
+        if result:
+            log.info("lots closed: %s", ", ".join(
+                f"{v.verdict} {v.key.line or '-'}/{v.key.product or '-'}/{v.key.lot}" for v in result))
+            self._kick_drain()
+            self._event("lots-closed", {"result": result})
+        return result
+
+    # ------------------------------------------------------------------ reload
+    def _check_reload(self, forced: bool) -> None:
+        fp = take_fingerprint(self.config_path, self._config.rules_dir)
+        if not forced:
+            if fp == self._applied_fp:
+                self._seen_fp = fp
+                return
+            if fp != self._seen_fp:   # still changing: wait for one more check with the same picture
+                self._seen_fp = fp
+                return
+            if self._applied_fp is not None and not fp.rule_names >= self._applied_fp.rule_names:
+                missing = sorted(self._applied_fp.rule_names - fp.rule_names)
+                self._reject(LotwardenError(
+                    "rule file removed; keeping its last good version (send SIGHUP to accept a removal)",
+                    path=Path(self._config.rules_dir) / missing[0], key="rules_dir"), fp)
+                self._applied_fp = fp
+                return
+        self._reload(fp)
+
+    def _reload(self, fp: Fingerprint) -> None:
+        from monitor.daemon.config import load_config
+
+        try:
+            config = load_config(self.config_path)
+            rules = self._load_rules(config)
+        except LotwardenError as exc:
+            self._reject(exc, fp)
+            self._applied_fp = self._seen_fp = fp   # do not re-try the same bad picture every check
+            return
+        old = self._config
+        self._config, self._rules = config, rules
+        self._applied_fp = self._seen_fp = take_fingerprint(self.config_path, config.rules_dir)
+        self._intake.set_rules(rules)
+        if hasattr(self._intake, "set_config"):
+            self._intake.set_config(config)
+        if config.watch != old.watch or config.profiles != old.profiles:
+            self._apply_watch(config)
+        if config.alerts != old.alerts and self._scheduler is not None:
+            for job_id in self._dispatch_jobs:
+                try:
+                    self._scheduler.remove_job(job_id)
+                except Exception:
+                    pass
+            if self._dispatcher is not None:
+                self._dispatcher.close()
+            self._dispatcher = self._make_dispatcher(config)
+            self._schedule_dispatcher()
+        self._audit("config-reloaded", config_version=getattr(config, "version", ""),
+                    rules={r.name: r.version for r in rules})
+        log.info("reloaded: config version %s, %d rules (%s)", getattr(config, "version", "?"), len(rules),
+                 ", ".join(f"{r.name}@{r.version}" for r in rules))
+        self._event("reloaded", {"rules": len(rules)})
+
+    def _reject(self, exc: LotwardenError, fp: Fingerprint) -> None:
+        bad = Path(exc.path) if exc.path else self.config_path
+        digest = content_hash([bad])
+        log.error("config rejected, keeping the last good version: %s", exc)
+        self._audit("config-rejected", file=str(bad), key=exc.key, message=str(exc), content_sha256=digest)
+        self._emit_alert("config-rejected", f"config-rejected|{bad}|{digest[:16]}",
+                         {"file": str(bad), "key": exc.key, "line": exc.line, "message": str(exc),
+                          "content_sha256": digest})
+        self._event("config-rejected", {"error": str(exc)})
+
+    # ------------------------------------------------------------------ alerts
+    def _emit_alert(self, kind: str, dedup_key: str, data: dict[str, Any]) -> bool:
+        """Store one daemon alert in the outbox in its own write transaction."""
+        from monitor.alerts.outbox import enqueue
+
+        alert = Alert(kind=kind, dedup_key=dedup_key, created_at=utc_now_iso(), data=data)
+        try:
+            with self._store.write() as conn:
+                return enqueue(conn, alert, self._config.alerts.channels)
+        except Exception:
+            log.exception("could not store the %s alert", kind)
+            return False
+
+    def _audit(self, event: str, **detail: Any) -> None:
+        try:
+            self._store.record_event(datetime.now(timezone.utc), event, **detail)
+        except Exception:
+            log.exception("could not write the %s audit record", event)
+
+    def _event(self, kind: str, details: dict[str, Any]) -> None:
+        if self.on_event is not None:
+            try:
+                self.on_event(kind, details)
+            except Exception:
+                log.exception("event callback failed")
+
+    # ------------------------------------------------------------------ shutdown
+    def _shutdown(self) -> None:
+        log.info("stopping: %d files processed", self.files_done)
+        self._run_calls()
+        if self._watcher is not None:
+            self._watcher.stop()
+        sched, self._scheduler = self._scheduler, None
+        if sched is not None:
+            _bounded(lambda: sched.shutdown(wait=True), STOP_DRAIN_SECONDS, "scheduler shutdown")
+        if self._store is not None:
+            self._emit_alert("daemon-stopped", f"daemon-stopped|{self._started_at}",
+                             {"started_at": self._started_at, "stopped_at": utc_now_iso(),
+                              "files": self.files_done})
+        if self._dispatcher is not None:
+            d = self._dispatcher
+            _bounded(lambda: d.drain(flush=True), STOP_DRAIN_SECONDS, "final outbox drain")
+        self._close_quietly()
+        self._event("stopped", {"files": self.files_done})
+        log.info("stopped")
+
+    def _close_quietly(self) -> None:
+        for obj in (self._dispatcher, self._store):
+            if obj is not None:
+                try:
+                    obj.close()
+                except Exception:
+                    log.exception("close failed")
+        self._dispatcher = self._store = None
+
+    # ------------------------------------------------------------------ signals
+    def _install_signals(self) -> dict[int, Any]:
+        if threading.current_thread() is not threading.main_thread():
+            return {}
+        old: dict[int, Any] = {}
+        for sig, fn in ((signal.SIGTERM, self._on_stop_signal), (signal.SIGINT, self._on_stop_signal),
+                        (signal.SIGHUP, self._on_hup)):
+            old[sig] = signal.signal(sig, fn)
+        return old
+
+    def _restore_signals(self, old: dict[int, Any]) -> None:
+        for sig, fn in old.items():
+            signal.signal(sig, fn)
+
+    def _on_stop_signal(self, signum: int, frame: Any) -> None:
+        log.info("signal %s: finishing the file in hand, then stopping", signal.Signals(signum).name)
+        self.stop()
+
+    def _on_hup(self, signum: int, frame: Any) -> None:
+        log.info("SIGHUP: reloading config and rules")
+        self.request_reload()
+
+
+def _bounded(fn: Callable[[], Any], seconds: float, what: str) -> None:
+    """Run ``fn`` in a helper thread and wait at most ``seconds`` for it."""
+    def guarded() -> None:
+        try:
+            fn()
+        except Exception:
+            log.exception("%s failed", what)
+
+    th = threading.Thread(target=guarded, name=f"lotwarden-{what}", daemon=True)
+    th.start()
+    th.join(seconds)
+    if th.is_alive():
+        log.warning("%s did not finish within %gs; going on", what, seconds)

@@ -1,0 +1,269 @@
+"""The run loop in-process: real watchdog observer, real SQLite state, real intake, real alert log."""
+
+from __future__ import annotations
+
+import io
+import json
+import os
+import sqlite3
+import textwrap
+import threading
+import time
+from pathlib import Path
+
+import pytest
+
+from monitor.daemon.service import Daemon
+
+RULE_OAT = textwrap.dedent("""\
+    name = "oat-500"
+    products = ["OAT-500"]
+    target = 500.0
+    unit = "g"
+    alternative = "two-sided"
+    alpha = 0.05
+    min_n = 5
+    idle_minutes = 30
+    """)
+HEADER = "timestamp,line,product,lot,head,value,unit\n"
+
+
+@pytest.fixture(autouse=True)
+def _no_leaked_threads():
+    before = set(threading.enumerate())
+    yield
+    deadline = time.monotonic() + 8
+    extra: list[threading.Thread] = []
+    while time.monotonic() < deadline:
+        extra = [t for t in threading.enumerate() if t not in before and t.is_alive()]
+        if not extra:
+            return
+        time.sleep(0.05)
+    pytest.fail(f"threads left running: {extra}")
+
+
+def make_plant(root: Path, *, settle: float = 0.2, polling: bool = False, extra: str = "") -> Path:
+    for d in ("drop", "rules"):
+        (root / d).mkdir(parents=True, exist_ok=True)
+    (root / "rules" / "oat-500.toml").write_text(RULE_OAT, encoding="utf-8")
+    cfg = root / "lotwarden.toml"
+    cfg.write_text(textwrap.dedent(f"""\
+        rules_dir = "rules"
+
+        [watch]
+        folder = "drop"
+        settle_seconds = {settle}
+        polling = {str(polling).lower()}
+        poll_interval = 0.1
+        rescan_seconds = 30
+
+        [alerts]
+        drain_seconds = 0.2
+
+        [alerts.log]
+        path = "alerts.jsonl"
+
+        [state]
+        folder = "state"
+        """) + textwrap.dedent(extra), encoding="utf-8")
+    return cfg
+
+
+def csv_rows(line: str, lot: str, values, start: int = 0) -> str:
+    return "".join(f"2026-11-30T06:{(start + i) // 60:02d}:{(start + i) % 60:02d},{line},OAT-500,{lot},H1,{float(v)!r},g\n"
+                   for i, v in enumerate(values))
+
+
+def write_atomically(path: Path, text: str) -> None:
+    tmp = path.with_name(path.name + ".tmp")
+    tmp.write_text(text, encoding="utf-8")
+    os.replace(tmp, path)
+
+
+class Running:
+    """A Daemon running in a thread for the length of a ``with`` block."""
+
+    def __init__(self, cfg: Path, **tweaks):
+        self.log = io.StringIO()
+        self.events: list[tuple[str, dict]] = []
+        self.daemon = Daemon(cfg, on_event=lambda k, d: self.events.append((k, d)), log_stream=self.log)
+        for k, v in tweaks.items():
+            setattr(self.daemon, k, v)
+        self.rc: list[int] = []
+        self.thread = threading.Thread(target=lambda: self.rc.append(self.daemon.run()))
+
+    def __enter__(self) -> "Running":
+        self.thread.start()
+        assert wait_for(lambda: self.daemon.ready.is_set() or not self.thread.is_alive(), 15)
+        assert self.thread.is_alive(), self.log.getvalue()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.daemon.stop()
+        self.thread.join(15)
+        assert not self.thread.is_alive()
+
+
+def wait_for(pred, timeout: float = 15.0, step: float = 0.05):
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        v = pred()
+        if v:
+            return v
+        time.sleep(step)
+    return pred()
+
+
+def query(db: Path, sql: str, *args):
+    conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=10)
+    try:
+        return conn.execute(sql, args).fetchall()
+    finally:
+        conn.close()
+
+
+def count(db: Path, sql: str, *args) -> int:
+    return int(query(db, sql, *args)[0][0])
+
+
+# ------------------------------------------------------------------------------------------------
+def test_bad_config_at_start_exits_2(tmp_path):
+    """A config with an unknown key does not start: run() returns 2 and says file and key."""
+    cfg = make_plant(tmp_path, extra="[watch2]\nx = 1\n")
+    log = io.StringIO()
+    assert Daemon(cfg, log_stream=log).run() == 2
+    assert "watch2" in log.getvalue() and str(cfg) in log.getvalue()
+
+
+def test_slow_writer_taken_once_after_last_chunk(tmp_path):
+    """A file written in chunks over longer than settle_seconds is taken once, complete."""
+    cfg = make_plant(tmp_path, settle=0.4)
+    db = tmp_path / "state" / "lotwarden.db"
+    values = [500.0 + (i % 5) * 0.3 for i in range(40)]
+    with Running(cfg):
+        target = tmp_path / "drop" / "slow.csv"
+        with open(target, "w", encoding="utf-8") as fh:
+            fh.write(HEADER)
+            for i in range(0, 40, 5):
+                fh.write(csv_rows("L1", "S1", values[i:i + 5], start=i))
+                fh.flush()
+                time.sleep(0.15)
+        assert wait_for(lambda: count(db, "SELECT count(*) FROM files") >= 1)
+        time.sleep(0.6)   # a second take would show up within this settle window
+    assert count(db, "SELECT count(*) FROM files") == 1
+    assert count(db, "SELECT count(*) FROM lot_values") == 40
+
+
+@pytest.mark.parametrize("polling", [False, True], ids=["native", "polling"])
+def test_burst_of_small_files_each_processed_once(tmp_path, polling):
+    """Hundreds of files dropped at once: every one done exactly once, every value stored once."""
+    n_files = 1000 if not polling else 200
+    cfg = make_plant(tmp_path, settle=0.1, polling=polling)
+    db = tmp_path / "state" / "lotwarden.db"
+    with Running(cfg):
+        for i in range(n_files):
+            write_atomically(tmp_path / "drop" / f"burst-{i:04d}.csv",
+                             HEADER + csv_rows("L1", "B1", [500.0 + (i % 7) * 0.1, 500.1], start=2 * i))
+        assert wait_for(lambda: count(db, "SELECT count(*) FROM files WHERE state = 'done'") >= n_files, 120)
+    assert count(db, "SELECT count(*) FROM files") == n_files
+    assert count(db, "SELECT count(DISTINCT path) FROM files") == n_files
+    assert count(db, "SELECT count(*) FROM lot_values") == 2 * n_files
+    assert not list((tmp_path / "drop").glob("burst-*.csv"))
+
+
+def test_files_already_there_at_start_are_taken(tmp_path):
+    """Files dropped while the daemon was down are found by the start-up scan."""
+    cfg = make_plant(tmp_path)
+    db = tmp_path / "state" / "lotwarden.db"
+    for i in range(3):
+        (tmp_path / "drop" / f"early-{i}.csv").write_text(HEADER + csv_rows("L1", "E1", [500.0, 500.2]))
+    with Running(cfg):
+        assert wait_for(lambda: db.exists() and count(db, "SELECT count(*) FROM files") >= 3)
+
+
+def test_corrupt_file_quarantined_and_next_file_processed(tmp_path):
+    """A corrupt export goes to quarantine with a reason file and an alert; the next good file goes on."""
+    cfg = make_plant(tmp_path)
+    db = tmp_path / "state" / "lotwarden.db"
+    with Running(cfg):
+        write_atomically(tmp_path / "drop" / "broken.csv", "\x00\x01garbage;;;\nnot,an,export\n\xff\xfe")
+        write_atomically(tmp_path / "drop" / "good.csv", HEADER + csv_rows("L1", "G1", [500.0, 500.4, 499.8]))
+        assert wait_for(lambda: db.exists() and count(db, "SELECT count(*) FROM files") >= 2)
+        assert wait_for(lambda: (tmp_path / "alerts.jsonl").exists()
+                        and "file-rejected" in (tmp_path / "alerts.jsonl").read_text())
+    states = dict(query(db, "SELECT path, state FROM files"))
+    assert states[str(tmp_path / "drop" / "broken.csv")] == "rejected"
+    assert states[str(tmp_path / "drop" / "good.csv")] == "done"
+    quarantined = list((tmp_path / "state" / "quarantine").rglob("broken.csv*"))
+    names = {p.name for p in quarantined}
+    assert "broken.csv" in names and "broken.csv.reason.txt" in names
+    reason = next(p for p in quarantined if p.name.endswith(".reason.txt")).read_text()
+    assert "broken.csv" in reason
+
+
+def test_bad_rule_edit_keeps_running_and_alerts_once(tmp_path):
+    """alpha = 1.5 in a rule: the daemon keeps the last good rules, logs file + key, alerts once."""
+    cfg = make_plant(tmp_path)
+    db = tmp_path / "state" / "lotwarden.db"
+    rule = tmp_path / "rules" / "oat-500.toml"
+    with Running(cfg, reload_check_seconds=0.2) as r:
+        rule.write_text(RULE_OAT.replace("alpha = 0.05", "alpha = 1.5"))
+        assert wait_for(lambda: count(db, "SELECT count(*) FROM alerts WHERE kind = 'config-rejected'") == 1)
+        assert "oat-500.toml" in r.log.getvalue() and "alpha" in r.log.getvalue()
+        time.sleep(1.0)   # the same bad content is checked again several times: still one alert
+        assert count(db, "SELECT count(*) FROM alerts WHERE kind = 'config-rejected'") == 1
+        write_atomically(tmp_path / "drop" / "after.csv", HEADER + csv_rows("L1", "K1", [500.0, 500.2]))
+        assert wait_for(lambda: count(db, "SELECT count(*) FROM files WHERE state = 'done'") == 1)
+        rule.write_text(RULE_OAT.replace("alpha = 0.05", "alpha = 0.01"))
+        assert wait_for(lambda: "reloaded" in r.log.getvalue())
+        assert r.daemon._rules[0].alpha == 0.01
+        rule.write_text("name = [unclosed\n")                                  # TOML syntax error
+        assert wait_for(lambda: count(db, "SELECT count(*) FROM alerts WHERE kind = 'config-rejected'") == 2)
+        assert r.daemon._rules[0].alpha == 0.01                               # last good version in force
+    rejected = query(db, "SELECT payload FROM alerts WHERE kind = 'config-rejected' ORDER BY id")
+    assert "alpha" in json.loads(rejected[0][0])["data"]["message"]
+
+
+def test_config_edits_unknown_key_rejected_and_rule_removal_kept(tmp_path):
+    """An unknown config key and a rule file deleted mid-edit both keep the last good version."""
+    cfg = make_plant(tmp_path)
+    db = tmp_path / "state" / "lotwarden.db"
+    good = cfg.read_text()
+    with Running(cfg, reload_check_seconds=0.2) as r:
+        cfg.write_text(good + "\nsurprise = true\n")
+        assert wait_for(lambda: count(db, "SELECT count(*) FROM alerts WHERE kind = 'config-rejected'") == 1)
+        assert "surprise" in r.log.getvalue()
+        cfg.write_text(good)
+        (tmp_path / "rules" / "oat-500.toml").unlink()
+        assert wait_for(lambda: count(db, "SELECT count(*) FROM alerts WHERE kind = 'config-rejected'") == 2)
+        assert [x.name for x in r.daemon._rules] == ["oat-500"]
+        assert r.thread.is_alive()
+    audit = [e for (e,) in query(db, "SELECT event FROM audit")]
+    assert audit.count("config-rejected") == 2
+
+
+def test_dead_observer_is_restarted_by_the_supervisor(tmp_path):
+    """When the observer thread dies, the supervisor job restarts it and rescans."""
+    cfg = make_plant(tmp_path)
+    db = tmp_path / "state" / "lotwarden.db"
+    with Running(cfg, supervise_seconds=0.2) as r:
+        obs = r.daemon._watcher._observer
+        obs.stop()
+        obs.join(5)
+        assert wait_for(lambda: r.daemon._watcher.is_alive() and r.daemon._watcher._observer is not obs)
+        write_atomically(tmp_path / "drop" / "after-restart.csv", HEADER + csv_rows("L1", "R1", [500.0, 500.1]))
+        assert wait_for(lambda: count(db, "SELECT count(*) FROM files WHERE state = 'done'") == 1)
+        assert "died" in r.log.getvalue()
+
+
+def test_stop_finishes_and_writes_started_and_stopped_alerts(tmp_path):
+    """stop() returns run() with 0; daemon-started and daemon-stopped alerts are in the outbox."""
+    cfg = make_plant(tmp_path)
+    db = tmp_path / "state" / "lotwarden.db"
+    with Running(cfg) as r:
+        pass
+    assert r.rc == [0]
+    kinds = [k for (k,) in query(db, "SELECT kind FROM alerts ORDER BY id")]
+    assert kinds[0] == "daemon-started" and kinds[-1] == "daemon-stopped"
+    for line in r.log.getvalue().splitlines():           # one line per event: ISO UTC time, level
+        assert line[:4].isdigit() and line[10] == "T" and line[19] == "Z", line
