@@ -1,0 +1,377 @@
+"""The self-contained demo: a temp plant folder, the real daemon in a thread, weigher-style drops, a story.
+
+Everything runs on this machine: the sample exports of the (invented) Brackenfield Foods plant are copied
+into a temporary tree, the daemon watches it with settle time 0.5 s, alerts go to a JSON-lines log and to an
+SMTP sink on 127.0.0.1 that prints each message it receives. Nothing leaves the machine.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import socket
+import sqlite3
+import sys
+import tempfile
+import threading
+import time
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, TextIO
+
+from monitor.daemon.service import Daemon
+
+SETTLE_SECONDS = 0.5
+DISCLAIMER = ("The tool screens; net-quantity compliance is decided under local weights-and-measures law by "
+              "the competent authority.")
+PATH_KEYS = ("path", "file", "folder", "dir", "template", "templates")
+
+
+# --------------------------------------------------------------------------------------------- finding inputs
+def find_inputs(start: Path | None = None) -> tuple[Path, Path, Path | None]:
+    """(sample_feeds, rules, repo config or None): from the current folder if it has both, else the repo."""
+    candidates = [Path(start or Path.cwd()), Path(__file__).resolve().parent.parent.parent]
+    for base in candidates:
+        feeds, rules = base / "sample_feeds", base / "rules"
+        if feeds.is_dir() and rules.is_dir():
+            cfg = base / "config" / "lotwarden.toml"
+            return feeds, rules, (cfg if cfg.is_file() else None)
+    from monitor.errors import ConfigError
+
+    raise ConfigError("cannot find sample_feeds/ and rules/", path=str(candidates[0]),
+                      hint="run `lotwarden demo` from the lotwarden source folder")
+
+
+def free_loopback_port() -> int:
+    """A free TCP port on 127.0.0.1 (bind to port 0, read it, close; RELIABILITY.md, aiosmtpd)."""
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+# --------------------------------------------------------------------------------------------- demo config
+def toml_value(v: Any) -> str:
+    """A TOML literal for the simple values profile tables hold."""
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (int, float)):
+        return repr(v)
+    if isinstance(v, str):
+        return json.dumps(v, ensure_ascii=False)
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(toml_value(x) for x in v) + "]"
+    if isinstance(v, dict):
+        return "{ " + ", ".join(f"{json.dumps(str(k))} = {toml_value(x)}" for k, x in v.items()) + " }"
+    raise ValueError(f"cannot write {v!r} as TOML")
+
+
+def profile_tables(repo_config: Path | None) -> dict[str, dict[str, Any]]:
+    """The `[profiles.*]` tables of the repo config, path-like values made absolute for the temp tree."""
+    if repo_config is None:
+        return {}
+    table = tomllib.loads(repo_config.read_text(encoding="utf-8-sig"))
+    out: dict[str, dict[str, Any]] = {}
+    for name, sub in (table.get("profiles") or {}).items():
+        fixed = dict(sub)
+        for k, v in sub.items():
+            if isinstance(v, str) and any(k.endswith(s) for s in PATH_KEYS) and not Path(v).is_absolute():
+                fixed[k] = str((repo_config.parent / v).resolve())
+        out[name] = fixed
+    return out
+
+
+def email_available() -> bool:
+    try:
+        import monitor.alerts.email_dispatch  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
+def write_demo_config(root: Path, profiles: dict[str, dict[str, Any]], smtp_port: int | None) -> Path:
+    """Write ``root/lotwarden.toml`` for the demo tree; return its path."""
+    lines = [
+        "# lotwarden demo config (written by `lotwarden demo`; everything stays on this machine)",
+        'rules_dir = "rules"', "",
+        "[watch]", 'folder = "drop"', f"settle_seconds = {SETTLE_SECONDS}", "polling = false",
+        "rescan_seconds = 5", "",
+        "[state]", 'folder = "state"', "",
+        "[alerts]", "drain_seconds = 0.5", "",
+        "[alerts.log]", 'path = "state/alerts.jsonl"', "",
+    ]
+    if smtp_port is not None:
+        lines += ["[alerts.email]", 'host = "127.0.0.1"', f"port = {smtp_port}", 'security = "none"',
+                  'sender = "lotwarden-demo@brackenfield.example"',
+                  'recipients = ["qa-lines@brackenfield.example"]', ""]
+    for name, table in profiles.items():
+        lines.append(f"[profiles.{json.dumps(name)}]")
+        lines += [f"{k} = {toml_value(v)}" for k, v in table.items()]
+        lines.append("")
+    cfg = root / "lotwarden.toml"
+    cfg.write_text("\n".join(lines), encoding="utf-8")
+    return cfg
+
+
+# --------------------------------------------------------------------------------------------- SMTP sink
+class PrintingSink:
+    """aiosmtpd handler printing From / To / Subject and the first body lines of each message."""
+
+    def __init__(self, say: Callable[[str], None], body_lines: int = 4) -> None:
+        self.say = say
+        self.body_lines = body_lines
+        self.count = 0
+
+    async def handle_DATA(self, server: Any, session: Any, envelope: Any) -> str:  # noqa: N802 (aiosmtpd API)
+        from email import message_from_bytes
+        from email.policy import default
+
+        msg = message_from_bytes(envelope.content, policy=default)
+        self.count += 1
+        body = msg.get_body(preferencelist=("plain",))
+        text = body.get_content() if body is not None else ""
+        first = [ln for ln in text.splitlines() if ln.strip()][: self.body_lines]
+        self.say(f"  e-mail #{self.count}  From: {msg['From']}  To: {msg['To']}")
+        self.say(f"            Subject: {msg['Subject']}")
+        for ln in first:
+            self.say(f"            | {ln[:100]}")
+        return "250 OK"
+
+
+# --------------------------------------------------------------------------------------------- the story
+@dataclass
+class Story:
+    """Prints the demo's events one line each, thread-safely."""
+
+    out: TextIO
+    t0: float = field(default_factory=time.monotonic)
+    lock: threading.Lock = field(default_factory=threading.Lock)
+
+    def say(self, text: str) -> None:
+        with self.lock:
+            print(f"[{time.monotonic() - self.t0:5.1f}s] {text}", file=self.out, flush=True)
+
+    def on_event(self, kind: str, details: dict[str, Any]) -> None:
+        if kind == "file-finished":
+            self.say(f"file finished, taken: {Path(details['path']).name}")
+        elif kind == "file-processed":
+            self.say(f"  -> {describe_outcome(details.get('outcome'))}")
+        elif kind == "lots-closed":
+            self.say(f"  -> lots closed: {describe_outcome(details.get('result'))}")
+        elif kind == "config-rejected":
+            self.say(f"config rejected: {details.get('error')}")
+
+
+def describe_outcome(outcome: Any) -> str:
+    """A short text for an intake outcome, from whatever fields it carries."""
+    if outcome is None:
+        return "nothing"
+    if isinstance(outcome, (list, tuple)):
+        return f"{len(outcome)} lot(s)" + "".join(
+            f"\n             {describe_verdict(o) if hasattr(o, 'verdict') else describe_outcome(o)}"
+            for o in outcome)
+    if hasattr(outcome, "describe"):
+        return str(outcome.describe())
+    parts = []
+    for name in ("state", "status", "kind", "n_values", "reason"):
+        v = getattr(outcome, name, None)
+        if v not in (None, "", ()):
+            parts.append(f"{name} {v}")
+    for v in getattr(outcome, "verdicts", ()) or ():
+        parts.append(describe_verdict(v))
+    return "; ".join(parts) if parts else str(outcome)
+
+
+def describe_verdict(v: Any) -> str:
+    key = getattr(v, "key", None)
+    where = f"{key.line}/{key.product}/{key.lot}" if key is not None else "?"
+    mean = getattr(v, "mean", None)
+    mean_s = "-" if mean is None else f"{mean:.2f}"
+    return f"verdict {getattr(v, 'verdict', '?')} for {where} (n {getattr(v, 'n', '?')}, mean {mean_s})"
+
+
+class AlertFollower:
+    """Prints new lines of the JSON-lines alert log."""
+
+    def __init__(self, path: Path, story: Story) -> None:
+        self.path, self.story, self.offset = path, story, 0
+
+    def poll(self) -> int:
+        try:
+            with open(self.path, "rb") as fh:
+                fh.seek(self.offset)
+                data = fh.read()
+        except FileNotFoundError:
+            return 0
+        end = data.rfind(b"\n") + 1
+        self.offset += end
+        count = 0
+        for raw in data[:end].splitlines():
+            try:
+                a = json.loads(raw)
+            except ValueError:
+                continue
+            count += 1
+            where = "/".join(x for x in (a.get("line"), a.get("product"), a.get("lot")) if x)
+            extra = a.get("data", {}).get("reason") or a.get("data", {}).get("message") or ""
+            text = " ".join(x for x in (str(a.get("kind")), where, str(extra)[:90]) if x)
+            self.story.say(f"alert logged: {text}")
+        return count
+
+
+# --------------------------------------------------------------------------------------------- dropping files
+def drop_in_pieces(src: Path, dest: Path, pieces: int = 3, pause: float = 0.2) -> None:
+    """Write ``src`` to ``dest`` in chunks with pauses, as a weigher streaming its export."""
+    data = src.read_bytes()
+    step = max(1, len(data) // pieces + 1)
+    with open(dest, "wb") as fh:
+        for i in range(0, len(data), step):
+            fh.write(data[i:i + step])
+            fh.flush()
+            time.sleep(pause)
+
+
+def drop_by_rename(src: Path, dest: Path) -> None:
+    """Write ``src`` under a temporary name, then rename it into place in one step."""
+    tmp = dest.with_name(dest.name + ".part")
+    shutil.copyfile(src, tmp)
+    os.replace(tmp, dest)
+
+
+def wait_until(pred: Callable[[], Any], timeout: float, step: float = 0.05) -> Any:
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        v = pred()
+        if v:
+            return v
+        time.sleep(step)
+    return pred()
+
+
+def pending_deliveries(db: Path, channel: str) -> int:
+    """Deliveries still pending on ``channel`` (e-mail may wait for its grouping window; see the stop)."""
+    conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5)
+    try:
+        return int(conn.execute("SELECT count(*) FROM deliveries WHERE state = 'pending' AND channel = ?",
+                                (channel,)).fetchone()[0])
+    except sqlite3.Error:
+        return 0
+    finally:
+        conn.close()
+
+
+def summary_rows(db: Path) -> list[tuple[Any, ...]]:
+    conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5)
+    try:
+        return conn.execute("SELECT line, product, lot, n, mean, target, unit, verdict, payload FROM verdicts"
+                            " ORDER BY line, product, id").fetchall()
+    finally:
+        conn.close()
+
+
+def print_summary(rows: list[tuple[Any, ...]], say: Callable[[str], None]) -> None:
+    say("")
+    say("Lots and verdicts")
+    head = f"{'line':<5} {'product':<10} {'lot':<12} {'n':>5} {'mean':>10} {'target':>8} {'unit':<4} verdict  reason"
+    say(head)
+    say("-" * len(head))
+    for line, product, lot, n, mean, target, unit, verdict, payload in rows:
+        try:
+            reason = json.loads(payload).get("reason", "")
+        except ValueError:
+            reason = ""
+        mean_s = "-" if mean is None else f"{mean:.2f}"
+        tgt_s = "-" if target is None else f"{target:g}"
+        say(f"{line:<5} {product:<10} {lot:<12} {n:>5} {mean_s:>10} {tgt_s:>8} {unit:<4} {verdict:<8} "
+            f"{str(reason)[:60]}")
+    say(DISCLAIMER)
+
+
+# --------------------------------------------------------------------------------------------- main
+def run_demo(out: TextIO | None = None, *, workdir: Path | None = None, start: Path | None = None,
+             timeout: float = 25.0) -> int:
+    """Run the whole demo; return 0 when every sample file was taken and the outbox drained."""
+    out = out or sys.stdout
+    story = Story(out)
+    feeds, rules, repo_cfg = find_inputs(start)
+    root = Path(workdir) if workdir else Path(tempfile.mkdtemp(prefix="lotwarden-demo-"))
+    (root / "drop").mkdir(parents=True, exist_ok=True)
+    shutil.copytree(rules, root / "rules", dirs_exist_ok=True)
+    incoming = root / "weigher-outbox"
+    shutil.copytree(feeds, incoming, dirs_exist_ok=True)
+    samples = sorted(p for p in incoming.iterdir() if p.is_file() and not p.name.startswith("."))
+
+    controller = None
+    smtp_port = None
+    sink = PrintingSink(story.say)
+    if email_available():
+        from aiosmtpd.controller import Controller
+
+        smtp_port = free_loopback_port()
+        controller = Controller(sink, hostname="127.0.0.1", port=smtp_port)
+        controller.start()
+    cfg = write_demo_config(root, profile_tables(repo_cfg), smtp_port)
+    story.say(f"demo plant folder: {root}")
+    story.say(f"config: {cfg.name}; {len(list((root / 'rules').glob('*.toml')))} rule files; "
+              f"{len(samples)} sample exports; alerts -> state/alerts.jsonl"
+              + (f" and e-mail via 127.0.0.1:{smtp_port}" if smtp_port else " (e-mail channel not installed)"))
+
+    log_file = open(root / "state-daemon.log", "a", encoding="utf-8")
+    daemon = Daemon(cfg, on_event=story.on_event, log_stream=log_file)
+    result: dict[str, int] = {}
+    th = threading.Thread(target=lambda: result.setdefault("rc", daemon.run()), name="lotwarden-demo-daemon")
+    th.start()
+    follower = AlertFollower(root / "state" / "alerts.jsonl", story)
+    ok = True
+    try:
+        if not wait_until(lambda: daemon.ready.is_set() or not th.is_alive(), 10):
+            story.say("daemon did not start; see state-daemon.log")
+            return 2
+        if not th.is_alive():
+            story.say(f"daemon stopped at start-up (exit {result.get('rc')}); see state-daemon.log")
+            return 2
+        deadline = time.monotonic() + timeout
+        for i, src in enumerate(samples):
+            dest = root / "drop" / src.name
+            mode = i % 3
+            before = daemon.files_done
+            if mode == 0:
+                story.say(f"weigher writes {src.name} in pieces")
+                drop_in_pieces(src, dest)
+            elif mode == 1:
+                story.say(f"weigher writes {src.name}.part and renames it")
+                drop_by_rename(src, dest)
+            else:
+                story.say(f"weigher copies {src.name}")
+                shutil.copyfile(src, dest)
+            left = max(1.0, deadline - time.monotonic())
+            if not wait_until(lambda: daemon.files_done > before, min(8.0, left)):
+                story.say(f"  !! {src.name} not taken in time")
+                ok = False
+            follower.poll()
+        story.say("end of shift: closing every open lot")
+        fut = daemon.call_soon(lambda d: d.close_all_lots())
+        fut.result(timeout=15)
+        db = root / "state" / "lotwarden.db"
+        if not wait_until(lambda: pending_deliveries(db, "log") == 0, 10, 0.1):
+            story.say("  !! some alerts were still waiting for the alert log")
+            ok = False
+        follower.poll()
+        story.say("stopping the daemon (it sends what the e-mail channel still groups)")
+        daemon.stop()
+        th.join(15)
+        if smtp_port is not None:
+            if pending_deliveries(db, "email"):
+                story.say("  !! some e-mails were not delivered")
+                ok = False
+            wait_until(lambda: sink.count > 0, 3)   # the sink prints from its own thread
+        print_summary(summary_rows(db), story.say)
+    finally:
+        daemon.stop()
+        th.join(15)
+        log_file.close()
+        if controller is not None:
+            controller.stop()
+    story.say(f"done: {daemon.files_done} files taken, {sink.count} e-mails received; files are in {root}")
+    return 0 if ok and result.get("rc") == 0 else 1
