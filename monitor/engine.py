@@ -120,11 +120,12 @@ def evaluate_many(lots: Sequence[LotData], rule: Rule) -> list[Verdict]:
     ctx = _Columns(n=n.tolist(), mean=mean.tolist(), sd=sd.tolist(), excluded=excluded.tolist(),
                    gate=gate.tolist(), sw_w=sw_w.tolist(), sw_p=sw_p.tolist(), power=pw.tolist(),
                    nfp=nfp.tolist(), test=cols)
+    raw_starts = np.cumsum(raw_len) - raw_len
     out: list[Verdict] = []
     for i, lot in enumerate(lots):
         values = x[starts[i]:starts[i] + n[i]] if lot.values is not None else None
         out.append(_verdict(lot, rule, i, ctx, values, bool(parametric[i]), bool(use_wilcoxon[i]),
-                            _finite_heads(lot, raw_len, finite, i)))
+                            _finite_heads(lot, int(raw_starts[i]), finite)))
     return out
 
 
@@ -172,11 +173,11 @@ def _power(n: np.ndarray, sd: np.ndarray, rule: Rule, wanted: np.ndarray) -> tup
     return pw, nfp
 
 
-def _finite_heads(lot: LotData, raw_len: np.ndarray, finite: np.ndarray, i: int) -> tuple[str, ...] | None:
+def _finite_heads(lot: LotData, start: int, finite: np.ndarray) -> tuple[str, ...] | None:
+    """The lot's head names for its finite values (``start``: the lot's first index in the batch)."""
     if lot.heads is None or lot.values is None:
         return None
-    start = int(raw_len[:i].sum())
-    mask = finite[start:start + int(raw_len[i])]
+    mask = finite[start:start + len(lot.heads)]
     return tuple(h for h, keep in zip(lot.heads, mask.tolist()) if keep)
 
 
@@ -239,7 +240,9 @@ def _verdict(lot: LotData, rule: Rule, i: int, c: _Columns, values: np.ndarray |
     n, mean, sd, gate = c.n[i], c.mean[i], c.sd[i], c.gate[i]
     unit = lot.unit
     dec = quantity_decimals(_opt(sd))
-    q = lambda v: f"{format_quantity(v, dec)} {unit}"                      # noqa: E731
+    def q(v: float, measured: bool = True) -> str:
+        """A measured quantity keeps its decimals (342.0); a set one (target, shift) drops trailing zeros."""
+        return f"{format_quantity(v, dec, strip=not measured)} {unit}"
     normality = _normality(lot, rule, gate, n, c.sw_w[i], c.sw_p[i])
     head_rows = _head_summaries(values, heads, rule) if values is not None and heads else ()
     standout = _standout_head(head_rows, rule.alpha)
@@ -303,13 +306,13 @@ def _test_reason(verdict: str, what: str, estimate: float, rule: Rule, f: dict[s
     if verdict == "hold":
         side = "below" if estimate < rule.target else "above"
         stat = f"{f['test']} = {format_statistic(f['statistic'])}, " if f["test"] in ("t", "z") else ""
-        return (f"{what} {q(estimate)} is {side} target {q(rule.target)} by {q(abs(estimate - rule.target))} "
+        return (f"{what} {q(estimate)} is {side} target {q(rule.target, False)} by {q(abs(estimate - rule.target))} "
                 f"({stat}{p_text})")
-    text = f"{what} {q(estimate)} vs target {q(rule.target)}: no shift shown ({p_text})"
+    text = f"{what} {q(estimate)} vs target {q(rule.target, False)}: no shift shown ({p_text})"
     if pw is None or rule.shift_of_interest is None:
         return text
     sign = {"two-sided": "±", "less": "−", "greater": "+"}[rule.alternative]
-    shift = f"{sign}{q(rule.shift_of_interest)}"
+    shift = f"{sign}{q(rule.shift_of_interest, False)}"
     if pw >= rule.target_power:
         return text + f"; power {pw:.2f} to detect {shift}, so a shift that size would likely have shown"
     more = (f"n ≥ {nfp} would give {rule.target_power:.2f}" if nfp is not None
@@ -332,7 +335,7 @@ def _review_reason(lot: LotData, rule: Rule, gate: int, n: int, mean: float, sd:
         return f"only {n} units; the rule needs at least {rule.min_n} to judge"
     if gate == _FLAT:
         if sd == 0:
-            return (f"all {n} values are identical ({q(mean)}): stuck sensor or rounding? "
+            return (f"all {n} values are identical ({q(mean, False)}): stuck sensor or rounding? "
                     "the t statistic is undefined")
         return (f"the {n} values do not vary beyond rounding (sd {sd:.3g} {lot.unit} at mean {q(mean)}): "
                 "the t statistic is meaningless")

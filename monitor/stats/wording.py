@@ -52,19 +52,21 @@ def format_statistic(v: float) -> str:
     return f"{v:.2f}" if abs(v) < 1000 else f"{v:.3g}"
 
 
-def format_quantity(v: float, decimals: int) -> str:
-    """A quantity with ``decimals`` decimals, trailing zeros dropped; 10 significant digits when huge.
+def format_quantity(v: float, decimals: int, strip: bool = True) -> str:
+    """A quantity with ``decimals`` decimals (trailing zeros dropped if ``strip``); 10 digits when huge.
 
     Examples
     --------
-    >>> format_quantity(497.2049, 1), format_quantity(500.0, 1), format_quantity(1e9 + 0.25, 3)
-    ('497.2', '500', '1000000000')
+    >>> format_quantity(497.2049, 1), format_quantity(500.0, 1), format_quantity(342.01, 1, strip=False)
+    ('497.2', '500', '342.0')
+    >>> format_quantity(1e9 + 0.25, 3)
+    '1000000000'
     """
     if not math.isfinite(v):
         return str(v)
     if abs(v) >= 1e7:
         return f"{v:.10g}"
     text = f"{v:.{decimals}f}"
-    if "." in text:
+    if strip and "." in text:
         text = text.rstrip("0").rstrip(".")
     return "0" if text in ("-0", "") else text
