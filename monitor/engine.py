@@ -120,12 +120,12 @@ def evaluate_many(lots: Sequence[LotData], rule: Rule) -> list[Verdict]:
     ctx = _Columns(n=n.tolist(), mean=mean.tolist(), sd=sd.tolist(), excluded=excluded.tolist(),
                    gate=gate.tolist(), sw_w=sw_w.tolist(), sw_p=sw_p.tolist(), power=pw.tolist(),
                    nfp=nfp.tolist(), test=cols)
-    raw_starts = np.cumsum(raw_len) - raw_len
+    heads = _head_breakdown(lots, raw_len, rule)
     out: list[Verdict] = []
     for i, lot in enumerate(lots):
         values = x[starts[i]:starts[i] + n[i]] if lot.values is not None else None
         out.append(_verdict(lot, rule, i, ctx, values, bool(parametric[i]), bool(use_wilcoxon[i]),
-                            _finite_heads(lot, int(raw_starts[i]), finite)))
+                            heads.get(i, ())))
     return out
 
 
@@ -173,31 +173,32 @@ def _power(n: np.ndarray, sd: np.ndarray, rule: Rule, wanted: np.ndarray) -> tup
     return pw, nfp
 
 
-def _finite_heads(lot: LotData, start: int, finite: np.ndarray) -> tuple[str, ...] | None:
-    """The lot's head names for its finite values (``start``: the lot's first index in the batch)."""
-    if lot.heads is None or lot.values is None:
-        return None
-    mask = finite[start:start + len(lot.heads)]
-    return tuple(h for h, keep in zip(lot.heads, mask.tolist()) if keep)
+def _head_breakdown(lots: list[LotData], raw_len: np.ndarray, rule: Rule) -> dict[int, tuple[HeadSummary, ...]]:
+    """Per-head summaries for every lot that names its heads, all (lot, head) groups in one segment pass.
 
-
-def _head_summaries(values: np.ndarray, heads: tuple[str, ...], rule: Rule) -> tuple[HeadSummary, ...]:
-    """One HeadSummary per filler head (sorted by name), with that head's own t-test p-value."""
-    if not heads:
-        return ()
-    names, codes = np.unique(np.array(heads, dtype=object).astype(str), return_inverse=True)
-    order = np.argsort(codes, kind="stable")
-    hn, hmean, hvar = segment_moments(values[order], np.bincount(codes, minlength=names.shape[0]))
-    with np.errstate(all="ignore"):
-        res = t_test_arrays(np.maximum(hn, 2), hmean, hvar, rule.target, rule.alternative, rule.alpha)
-    out = []
-    for j, name in enumerate(names.tolist()):
-        m, v, cnt = float(hmean[j]), float(hvar[j]), int(hn[j])
-        testable = cnt >= 2 and v > 0 and np.isfinite(v)
-        out.append(HeadSummary(head=name, n=cnt, mean=m, sd=float(np.sqrt(v)) if cnt >= 2 else None,
-                               offset=m - rule.target,
-                               p_value=float(res["p_value"][j]) if testable else None))
-    return tuple(out)
+    Groups are ordered by lot, then head name; inside a group values keep arrival order, so a lot's
+    numbers do not depend on the rest of the batch. Non-finite values are left out of their head too.
+    """
+    idx = [i for i, lot in enumerate(lots) if lot.heads is not None and lot.values is not None and raw_len[i]]
+    if not idx:
+        return {}
+    names = np.concatenate([np.asarray(lots[i].heads).astype(str) for i in idx])
+    vals = np.concatenate([lots[i].values for i in idx])
+    owner = np.repeat(np.arange(len(idx)), raw_len[idx])
+    keep = np.isfinite(vals)
+    names, vals, owner = names[keep], vals[keep], owner[keep]
+    labels, code = np.unique(names, return_inverse=True)
+    keys, group = np.unique(owner * labels.shape[0] + code, return_inverse=True)
+    hn, hmean, hvar = segment_moments(vals[np.argsort(group, kind="stable")], np.bincount(group))
+    res = t_test_arrays(np.maximum(hn, 2), hmean, hvar, rule.target, rule.alternative, rule.alpha)
+    testable = (hn >= 2) & (hvar > 0)
+    sd = np.where(hn >= 2, np.sqrt(np.where(hn >= 2, hvar, 0.0)), np.nan)
+    rows = [HeadSummary(head=h, n=c, mean=m, sd=s if c >= 2 else None, offset=m - rule.target,
+                        p_value=p if t else None)
+            for h, c, m, s, p, t in zip(labels[keys % labels.shape[0]].tolist(), hn.tolist(), hmean.tolist(),
+                                        sd.tolist(), res["p_value"].tolist(), testable.tolist())]
+    bounds = np.searchsorted(keys // labels.shape[0], np.arange(len(idx) + 1)).tolist()
+    return {i: tuple(rows[bounds[j]:bounds[j + 1]]) for j, i in enumerate(idx)}
 
 
 def _standout_head(heads: tuple[HeadSummary, ...], alpha: float) -> HeadSummary | None:
@@ -236,7 +237,7 @@ def _opt(v: float) -> float | None:
 
 
 def _verdict(lot: LotData, rule: Rule, i: int, c: _Columns, values: np.ndarray | None, parametric: bool,
-             wilcoxon: bool, heads: tuple[str, ...] | None) -> Verdict:
+             wilcoxon: bool, head_rows: tuple[HeadSummary, ...]) -> Verdict:
     n, mean, sd, gate = c.n[i], c.mean[i], c.sd[i], c.gate[i]
     unit = lot.unit
     dec = quantity_decimals(_opt(sd))
@@ -244,7 +245,6 @@ def _verdict(lot: LotData, rule: Rule, i: int, c: _Columns, values: np.ndarray |
         """A measured quantity keeps its decimals (342.0); a set one (target, shift) drops trailing zeros."""
         return f"{format_quantity(v, dec, strip=not measured)} {unit}"
     normality = _normality(lot, rule, gate, n, c.sw_w[i], c.sw_p[i])
-    head_rows = _head_summaries(values, heads, rule) if values is not None and heads else ()
     standout = _standout_head(head_rows, rule.alpha)
     pw = _opt(c.power[i])
     nfp = c.nfp[i] if c.nfp[i] > 0 else None

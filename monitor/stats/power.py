@@ -87,7 +87,8 @@ def n_for_power(shift: float | np.ndarray, sd: float | np.ndarray, alpha: float,
                 alternative: str = "two-sided", known_sd: bool = False) -> np.ndarray:
     """Smallest n >= 2 whose power reaches ``target_power`` (vectorised over ``shift`` / ``sd``).
 
-    Power rises with n, so a doubling search brackets the answer and a bisection finds it.
+    Power rises with n, so a bracket around the normal-theory size, widened where needed, and a
+    bisection find it.
 
     Parameters
     ----------
@@ -118,9 +119,20 @@ def n_for_power(shift: float | np.ndarray, sd: float | np.ndarray, alpha: float,
     def reaches(n: np.ndarray) -> np.ndarray:
         return power(n, s, d, alpha, alternative, known_sd) >= target_power
 
-    lo = np.full(s.shape, 1, dtype=np.int64)            # power(lo) < target (or lo = 1: below the range)
-    hi = np.full(s.shape, 2, dtype=np.int64)
-    done = reaches(hi)
+    # Bracket around the normal-theory size ((z_a + z_power)·σ/δ)², which Student's t exceeds by about
+    # z_a²/2; widen (halve / double) where the guess misses, then bisect the bracket.
+    a = alpha if alternative != "two-sided" else alpha / 2.0
+    za, zp = float(special.ndtri(1.0 - a)), float(special.ndtri(target_power))
+    with np.errstate(all="ignore"):
+        guess = np.minimum(((za + zp) * d / s) ** 2, float(MAX_PLAN_N))
+    lo = np.clip(np.floor(0.9 * guess) - 1, 1, MAX_PLAN_N).astype(np.int64)     # want: power(lo) < target
+    hi = np.clip(np.ceil(1.1 * guess + za * za / 2 + 5), 2, MAX_PLAN_N).astype(np.int64)   # want: reached
+    low_hit = (lo >= 2) & reaches(np.maximum(lo, 2))
+    while low_hit.any():
+        hi = np.where(low_hit, lo, hi)
+        lo = np.where(low_hit, np.maximum(lo // 2, 1), lo)
+        low_hit = low_hit & (lo >= 2) & reaches(np.maximum(lo, 2))
+    done = reaches(hi) | (hi >= MAX_PLAN_N)
     while not done.all():
         grow = ~done
         lo = np.where(grow, hi, lo)

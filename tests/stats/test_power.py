@@ -69,12 +69,17 @@ def test_sample_size_matches_statsmodels_solve_power(alternative):
 
 
 def test_n_for_power_is_the_smallest():
-    """The returned n reaches the power and n − 1 does not (definition)."""
-    for d in (0.3, 0.8, 1.7):
-        n = int(n_for_power(d, 1.0, 0.05, 0.8, "less")[0])
-        assert power(n, d, 1.0, 0.05, "less") >= 0.8
-        if n > 2:
-            assert power(n - 1, d, 1.0, 0.05, "less") < 0.8
+    """The returned n reaches the power and n − 1 does not (definition), over many cases at once."""
+    rng = np.random.default_rng(31)
+    shifts = np.r_[rng.uniform(0.02, 6.0, 60), 0.3, 0.8, 1.7, 25.0]
+    for alternative in ("two-sided", "less", "greater"):
+        for known in (False, True):
+            for target, alpha in ((0.8, 0.05), (0.95, 0.01), (0.3, 0.1)):
+                ns = n_for_power(shifts, 1.0, alpha, target, alternative, known)
+                p_at = power(ns, shifts, 1.0, alpha, alternative, known)
+                p_below = power(np.maximum(ns - 1, 2), shifts, 1.0, alpha, alternative, known)
+                assert (ns >= 2).all() and (p_at >= target).all()
+                assert ((ns == 2) | (p_below < target)).all()
 
 
 def test_unreachable_and_invalid():
