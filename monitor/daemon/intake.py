@@ -1,21 +1,21 @@
-"""Takes one finished export into the state store exactly once: hash, dedup, read, lots, verdicts, archive.
+"""Takes finished exports into the state store exactly once: hash, dedup, read, lots, verdicts, archive.
 
-One file, three short transactions (each ``BEGIN IMMEDIATE``):
+A batch of files (one file for ``process``) goes through two short write transactions
+(``BEGIN IMMEDIATE`` each):
 
-1. *mark* — the file is known by the SHA-256 of its bytes; a content already done is a duplicate (marked
-   and alerted right here); otherwise a ``processing`` row is written (a crash after this is retried by
-   ``recover``).
-2. *done* — values, lot openings/closings, verdicts, audit records and every alert they raise (outbox),
-   together with the file's done mark and its planned archive path. All of it, or none of it.
-3. *archived* — after the file has been moved, the move is recorded.
+1. *mark* — each file is known by the SHA-256 of its bytes; content already done is a duplicate (marked and
+   alerted here); otherwise a ``processing`` row is written, which ``recover`` retries after a crash.
+2. *done* — for each file in order: values, lot openings and closings, verdicts, audit records and every
+   alert they raise (outbox), with the file's done / rejected mark and its planned archive path. All or
+   nothing: a crash rolls the whole batch back and the files, still in the drop folder, are retried.
 
-A crash between 2 and 3 leaves a done file in the drop folder: it is moved, never counted again.
-Bad data never raises: a file the reader rejects goes to quarantine with ``<name>.reason.txt`` and a
-``file-rejected`` alert.
+Then the files move (archive, or quarantine with ``<name>.reason.txt``); each move is recorded with the next
+write transaction (or ``flush``). A done file found in the drop folder after a crash is only moved, never
+counted again. Bad data never raises.
 
-Test hook: the environment variable ``LOTWARDEN_CRASH_AT=<point>[:<n>]`` makes the process SIGKILL
-itself at ``<point>`` of its ``n``-th call of ``process`` (default 1). Points: ``after-mark``,
-``mid-values``, ``after-commit`` (= ``before-archive``), ``after-archive``. Used by the crash tests only.
+Test hook: ``LOTWARDEN_CRASH_AT=<point>[:<n>]`` makes the process SIGKILL itself at ``<point>`` for the
+``n``-th file handed to this intake (default 1). Points: ``after-mark``, ``mid-values``, ``after-commit``
+(= ``before-archive``), ``after-archive``. Only the crash tests set it.
 """
 
 from __future__ import annotations
@@ -26,17 +26,16 @@ import os
 import signal
 import sqlite3
 import threading
-from dataclasses import dataclass, replace
+from contextlib import contextmanager
+from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Callable, Sequence
-
-import numpy as np
-import pandas as pd
+from typing import Any, Callable, Iterator, Sequence
 
 from monitor.alerts import outbox
 from monitor.alerts.alert import Alert
-from monitor.daemon import archive, judge, lots
+from monitor.daemon import accumulate, archive, judge
+from monitor.daemon.accumulate import Judging, Tally, lot_name
 from monitor.daemon.config import Config
 from monitor.daemon.store import Store, utc_iso
 from monitor.errors import ExportError
@@ -47,6 +46,8 @@ log = logging.getLogger("lotwarden.intake")
 
 CRASH_ENV = "LOTWARDEN_CRASH_AT"
 CRASH_POINTS = ("after-mark", "mid-values", "after-commit", "before-archive", "after-archive")
+MAX_UNRECORDED_MOVES = 64
+MAX_ATTEMPTS = 3  # start-ups that may find a file still 'processing' before it is quarantined
 Clock = Callable[[], datetime]
 
 
@@ -68,14 +69,13 @@ class FileOutcome:
 
     def describe(self) -> str:
         """One log line."""
-        name = Path(self.path).name
-        text = f"{self.status} {name}"
+        text = f"{self.status} {Path(self.path).name}"
         if self.status in ("taken", "revision"):
             text += f": {self.n_values} values"
         if self.lots_closed:
             text += f"; lots closed: {', '.join(self.lots_closed)}"
         if self.verdicts:
-            text += "; " + ", ".join(f"{v.verdict} {_lot_name(v.key)}" for v in self.verdicts)
+            text += "; " + ", ".join(f"{v.verdict} {lot_name(v.key)}" for v in self.verdicts)
         if self.reason:
             text += f" — {self.reason}"
         if self.moved_to:
@@ -83,8 +83,23 @@ class FileOutcome:
         return text
 
 
-def _lot_name(key: LotKey) -> str:
-    return "/".join(x or "-" for x in (key.line, key.product, key.lot))
+@dataclass
+class _Item:
+    """One file on its way through a batch (internal)."""
+
+    path: Path
+    call: int
+    data: bytes = b""
+    size: int = 0
+    mtime: float = 0.0
+    sha: str = ""
+    file_id: int | None = None
+    outcome: FileOutcome | None = None
+    export: Any = None
+    profile: Any = None
+    error: tuple[str, ExportError | None] | None = None
+    move: tuple[Path, str] | None = None       # (planned target, state) once a move is due
+    extra: dict[str, Any] = field(default_factory=dict)
 
 
 def _now() -> datetime:
@@ -95,22 +110,20 @@ class Intake:
     """Turns finished files into stored values, verdicts and alerts. Thread-safe (one lock per intake)."""
 
     def __init__(self, config: Config, rules: Sequence[Rule], store: Store, *, clock: Clock = _now,
-                 reader: Callable[..., Any] | None = None, profile_for: Callable[..., Any] | None = None,
                  evaluate: judge.Evaluator | None = None) -> None:
+        from monitor.ingest import read_export_bytes
+        from monitor.ingest.profile import profile_for
+
         self.config = config
         self.rules = list(rules)
         self.store = store
         self.clock = clock
-        if reader is None or profile_for is None:
-            from monitor.ingest import read_export_bytes
-            from monitor.ingest.profile import profile_for as _profile_for
-            reader = reader or read_export_bytes
-            profile_for = profile_for or _profile_for
-        self._read = reader
+        self._read = read_export_bytes
         self._profile_for = profile_for
         self._evaluate = evaluate
         self._lock = threading.RLock()
         self._calls = 0
+        self._moved: list[tuple[str, str, int]] = []  # moves done, recorded with the next write transaction
         self._crash = _parse_crash(os.environ.get(CRASH_ENV, ""))
 
     # -- reloads -------------------------------------------------------------------------------
@@ -124,266 +137,192 @@ class Intake:
         with self._lock:
             self.config = config
 
-    # -- one file ------------------------------------------------------------------------------
+    # -- files ---------------------------------------------------------------------------------
     def process(self, path: str | Path) -> FileOutcome:
         """Take one finished file. Never raises for bad data; returns what happened."""
+        return self.process_batch([path])[0]
+
+    def process_batch(self, paths: Sequence[str | Path]) -> list[FileOutcome]:
+        """Take several finished files, in the order given, with one commit for all of them.
+
+        Same result as ``process`` on each in turn; a backlog (start-up scan) goes faster this way because
+        every commit waits for the disk (synchronous=FULL).
+        """
         with self._lock:
-            self._calls += 1
-            return self._process(Path(os.path.abspath(path)))
+            items: list[_Item] = []
+            for p in paths:
+                self._calls += 1
+                items.append(_Item(Path(os.path.abspath(p)), self._calls))
+            for it in items:
+                self._read_file(it)
+            now = self.clock()
+            live = [it for it in items if it.outcome is None]
+            if live:
+                with self._write() as conn:
+                    for it in live:
+                        self._mark(conn, it, now)
+            for it in live:
+                if it.outcome is None:
+                    self._maybe_crash("after-mark", it.call)
+            todo = [it for it in live if it.outcome is None]
+            for it in todo:
+                self._parse(it)
+            self._settle(todo, now)
+            for it in items:
+                if it.move is not None:
+                    moved = self._finish_move(it.file_id or 0, it.path, *it.move, call=it.call)
+                    it.outcome = replace(it.outcome, moved_to=moved) if it.outcome else None
+            return [it.outcome or FileOutcome(str(it.path), "unreadable") for it in items]
 
-    def _process(self, p: Path) -> FileOutcome:
+    def _read_file(self, it: _Item) -> None:
         try:
-            with open(p, "rb") as fh:
+            with open(it.path, "rb") as fh:
                 st = os.fstat(fh.fileno())
-                data = fh.read()
+                it.data = fh.read()
         except FileNotFoundError:
-            return FileOutcome(str(p), "vanished", reason="the file is no longer in the drop folder")
+            it.outcome = FileOutcome(str(it.path), "vanished", reason="the file is no longer in the drop folder")
+            return
         except OSError as exc:
-            return FileOutcome(str(p), "unreadable", reason=f"cannot read: {exc.strerror or exc}; will retry")
-        sha = hashlib.sha256(data).hexdigest()
-        now = self.clock()
-        at = utc_iso(now)
-        with self.store.write() as conn:
-            left = conn.execute(
-                "SELECT id, state, archived_path FROM files WHERE sha256 = ? AND path = ?"
-                " AND archived_at IS NULL ORDER BY id DESC LIMIT 1", (sha, str(p))).fetchone()
-            file_id = left[0] if left else None
-            outcome: FileOutcome | None = None
-            if left is None or left[1] == "processing":
-                outcome = self._mark(conn, p, sha, st, at, now, file_id)
-                if outcome is None and file_id is None:
-                    file_id = self._insert_processing(conn, p, sha, st, at)
-        if left is not None and left[1] != "processing":  # a crash left this handled file behind
-            moved = self._finish_move(left[0], p, Path(left[2]), left[1])
-            return FileOutcome(str(p), "archived", file_id=left[0], sha256=sha, moved_to=moved,
-                               reason=f"already {left[1]}; finished its move")
-        if outcome is not None:  # duplicate: marked and alerted; now move it
-            moved = self._finish_move(int(outcome.file_id or 0), p, Path(str(outcome.moved_to)), "duplicate")
-            return replace(outcome, moved_to=moved)
-        assert file_id is not None
-        self._maybe_crash("after-mark")
-        profile = self._profile_for(p.name, self.config.profiles)
-        try:
-            export = self._read(data, name=str(p), profile=profile)
-        except ExportError as exc:
-            return self._reject(file_id, p, sha, now, str(exc), exc)
-        except Exception as exc:  # a reader bug: keep the file safe and tell people
-            log.exception("reader failed on %s", p)
-            return self._reject(file_id, p, sha, now, f"the reader failed ({type(exc).__name__}: {exc})", None)
-        return self._take(file_id, p, sha, now, export, profile)
+            it.outcome = FileOutcome(str(it.path), "unreadable", reason=f"cannot read: {exc.strerror or exc}; "
+                                                                        "will retry")
+            return
+        it.size, it.mtime = st.st_size, st.st_mtime
+        it.sha = hashlib.sha256(it.data).hexdigest()
 
-    def _mark(self, conn: sqlite3.Connection, p: Path, sha: str, st: os.stat_result, at: str, now: datetime,
-              file_id: int | None) -> FileOutcome | None:
-        """Inside txn 1: a duplicate is marked and alerted here (returned); else None."""
+    def _mark(self, conn: sqlite3.Connection, it: _Item, now: datetime) -> None:
+        """Transaction 1 for one file: finish a crash's leftover, mark a duplicate, or mark processing."""
+        at = utc_iso(now)
+        left = conn.execute("SELECT id, state, archived_path FROM files WHERE sha256 = ? AND path = ?"
+                            " AND archived_at IS NULL ORDER BY id DESC LIMIT 1", (it.sha, str(it.path))).fetchone()
+        if left is not None and left[1] != "processing" and left[0] not in {m[2] for m in self._moved}:
+            it.file_id = left[0]
+            it.outcome = FileOutcome(str(it.path), "archived", file_id=left[0], sha256=it.sha,
+                                     reason=f"already {left[1]}; finished its move")
+            it.move = (Path(left[2]), left[1])
+            return
+        if left is not None and left[1] == "processing":
+            it.file_id = left[0]
+        if not self._mark_duplicate(conn, it, now, at) and it.file_id is None:
+            cur = conn.execute("INSERT INTO files(sha256, path, size, mtime, first_seen_at, state)"
+                               " VALUES (?,?,?,?,?,'processing')", (it.sha, str(it.path), it.size, it.mtime, at))
+            it.file_id = int(cur.lastrowid)
+
+    def _mark_duplicate(self, conn: sqlite3.Connection, it: _Item, now: datetime, at: str) -> bool:
         first = conn.execute("SELECT id, path, processed_at FROM files WHERE sha256 = ? AND state = 'done'"
-                             " ORDER BY id LIMIT 1", (sha,)).fetchone()
+                             " ORDER BY id LIMIT 1", (it.sha,)).fetchone()
         if first is None:
-            return None
-        if file_id is None:
-            file_id = self._insert_processing(conn, p, sha, st, at)
-        target = self._plan_target(conn, self.config.state.archive, p.name, now)
-        reason = f"same content as file {first[0]} ({Path(first[1]).name}, processed {first[2]}); not counted again"
+            return False
+        if it.file_id is None:
+            cur = conn.execute("INSERT INTO files(sha256, path, size, mtime, first_seen_at, state)"
+                               " VALUES (?,?,?,?,?,'duplicate')", (it.sha, str(it.path), it.size, it.mtime, at))
+            it.file_id = int(cur.lastrowid)
+        target = self._plan_target(conn, self.config.state.archive, it.path.name, now)
+        reason = (f"same content as file {first[0]} ({Path(first[1]).name}, processed {first[2]});"
+                  " not counted again")
         conn.execute("UPDATE files SET state='duplicate', processed_at=?, archived_path=?, reason=?, duplicate_of=?"
-                     " WHERE id=?", (at, str(target), reason, first[0], file_id))
-        Store.audit(conn, at, "file-duplicate", file_id=file_id, detail={"path": str(p), "sha256": sha,
-                                                                        "duplicate_of": first[0]})
-        alert = Alert(kind="file-duplicate", dedup_key=f"file-duplicate|{file_id}", created_at=at,
-                      data={"file": p.name, "path": str(p), "sha256": sha, "reason": reason,
+                     " WHERE id=?", (at, str(target), reason, first[0], it.file_id))
+        Store.audit(conn, at, "file-duplicate", file_id=it.file_id,
+                    detail={"path": str(it.path), "sha256": it.sha, "duplicate_of": first[0]})
+        alert = Alert(kind="file-duplicate", dedup_key=f"file-duplicate|{it.file_id}", created_at=at,
+                      data={"file": it.path.name, "path": str(it.path), "sha256": it.sha, "reason": reason,
                             "duplicate_of": {"id": first[0], "path": first[1], "processed_at": first[2]}})
         new = outbox.enqueue(conn, alert, self.config.alerts.channels)
-        return FileOutcome(str(p), "duplicate", file_id=file_id, sha256=sha, moved_to=str(target), reason=reason,
-                           alerts=(alert.dedup_key,) if new else ())
+        it.outcome = FileOutcome(str(it.path), "duplicate", file_id=it.file_id, sha256=it.sha, reason=reason,
+                                 alerts=(alert.dedup_key,) if new else ())
+        it.move = (target, "duplicate")
+        return True
 
-    @staticmethod
-    def _insert_processing(conn: sqlite3.Connection, p: Path, sha: str, st: os.stat_result, at: str) -> int:
-        cur = conn.execute("INSERT INTO files(sha256, path, size, mtime, first_seen_at, state)"
-                           " VALUES (?,?,?,?,?,'processing')", (sha, str(p), st.st_size, st.st_mtime, at))
-        return int(cur.lastrowid)
+    def _parse(self, it: _Item) -> None:
+        it.profile = self._profile_for(it.path.name, self.config.profiles)
+        try:
+            it.export = self._read(it.data, name=str(it.path), profile=it.profile)
+        except ExportError as exc:
+            it.error = (str(exc), exc)
+        except Exception as exc:  # a reader bug: keep the file safe and tell people
+            log.exception("reader failed on %s", it.path)
+            it.error = (f"the reader failed ({type(exc).__name__}: {exc})", None)
+
+    def _settle(self, todo: list[_Item], now: datetime) -> None:
+        """Transaction 2: every file of the batch done, duplicate or rejected, with all it caused."""
+        if not todo:
+            return
+        at = utc_iso(now)
+        with self._write() as conn:
+            for it in todo:
+                if self._mark_duplicate(conn, it, now, at):  # same content earlier in this batch
+                    continue
+                if it.error is not None:
+                    self._mark_rejected(conn, it, now, at)
+                else:
+                    self._take(conn, it, now, at)
+        for it in todo:
+            self._maybe_crash("after-commit", it.call)
+            self._maybe_crash("before-archive", it.call)
+
+    def _take(self, conn: sqlite3.Connection, it: _Item, now: datetime, at: str) -> None:
+        how = self._judging()
+        tally = Tally()
+        prev = conn.execute("SELECT id, sha256, processed_at FROM files WHERE path = ? AND state = 'done'"
+                            " AND sha256 != ? ORDER BY id DESC LIMIT 1", (str(it.path), it.sha)).fetchone()
+        status = "taken"
+        if prev is not None:
+            status = "revision"
+            conn.execute("UPDATE files SET revision_of = ? WHERE id = ?", (prev[0], it.file_id))
+            Store.audit(conn, at, "file-revised", file_id=it.file_id,
+                        detail={"path": str(it.path), "sha256": it.sha, "previous": prev[0]})
+            alert = Alert(kind="file-revised", dedup_key=f"file-revised|{it.file_id}", created_at=at,
+                          data={"file": it.path.name, "path": str(it.path), "sha256": it.sha,
+                                "reason": "a file at a known path arrived with different content;"
+                                          " its rows are counted as new rows",
+                                "previous": {"id": prev[0], "sha256": prev[1], "processed_at": prev[2]}})
+            if outbox.enqueue(conn, alert, how.channels):
+                tally.alerts.append(alert.dedup_key)
+        export, file_id = it.export, int(it.file_id or 0)
+        kind = str(getattr(export, "kind", "values"))
+        density = accumulate.density_of(export, it.profile)
+        if kind == "summary":
+            n_values = accumulate.add_summaries(conn, how, file_id, str(it.path), export, density, at, tally)
+        else:
+            n_values = accumulate.add_values(conn, how, file_id, export, density, now, tally,
+                                             lambda: self._maybe_crash("mid-values", it.call))
+        target = self._plan_target(conn, self.config.state.archive, it.path.name, now)
+        n_bad = len(getattr(export, "bad_rows", ()) or ())
+        conn.execute("UPDATE files SET state='done', processed_at=?, archived_path=?, kind=?, n_values=?,"
+                     " n_bad_rows=? WHERE id=?", (at, str(target), kind, n_values, n_bad, file_id))
+        Store.audit(conn, at, "file-taken", file_id=file_id,
+                    detail={"path": str(it.path), "sha256": it.sha, "kind": kind, "values": n_values,
+                            "bad_rows": n_bad, "profile": getattr(it.profile, "name", None),
+                            "archived_path": str(target)})
+        it.outcome = FileOutcome(str(it.path), status, file_id=file_id, sha256=it.sha, n_values=n_values,
+                                 lots_closed=tuple(tally.closed), verdicts=tuple(tally.verdicts),
+                                 alerts=tuple(tally.alerts))
+        it.move = (target, "done")
+
+    def _mark_rejected(self, conn: sqlite3.Connection, it: _Item, now: datetime, at: str) -> None:
+        reason, exc = it.error or ("rejected", None)
+        target = self._plan_target(conn, self.config.state.quarantine, it.path.name, now)
+        conn.execute("UPDATE files SET state='rejected', processed_at=?, archived_path=?, reason=? WHERE id=?",
+                     (at, str(target), reason, it.file_id))
+        Store.audit(conn, at, "file-rejected", file_id=it.file_id,
+                    detail={"path": str(it.path), "sha256": it.sha, "reason": reason})
+        data: dict[str, Any] = {"file": it.path.name, "path": str(it.path), "sha256": it.sha, "reason": reason,
+                                "quarantined_to": str(target)}
+        if exc is not None:
+            data.update({"line": exc.line, "key": exc.key})
+        alert = Alert(kind="file-rejected", dedup_key=f"file-rejected|{it.file_id}", created_at=at, data=data)
+        new = outbox.enqueue(conn, alert, self.config.alerts.channels)
+        it.outcome = FileOutcome(str(it.path), "rejected", file_id=it.file_id, sha256=it.sha, reason=reason,
+                                 alerts=(alert.dedup_key,) if new else ())
+        it.move = (target, "rejected")
 
     def _plan_target(self, conn: sqlite3.Connection, root: Path, name: str, now: datetime) -> Path:
         def planned(c: Path) -> bool:
             return conn.execute("SELECT 1 FROM files WHERE archived_path = ? LIMIT 1", (str(c),)).fetchone() is not None
         return archive.free_name(archive.dated_folder(root, now), name, planned)
 
-    # -- the done transaction ------------------------------------------------------------------
-    def _take(self, file_id: int, p: Path, sha: str, now: datetime, export: Any, profile: Any) -> FileOutcome:
-        at = utc_iso(now)
-        channels = self.config.alerts.channels
-        new_alerts: list[str] = []
-        verdicts: list[Verdict] = []
-        closed: list[str] = []
-        with self.store.write() as conn:
-            state = conn.execute("SELECT state FROM files WHERE id = ?", (file_id,)).fetchone()
-            if state is None or state[0] != "processing":  # another thread finished it meanwhile
-                return FileOutcome(str(p), "archived", file_id=file_id, sha256=sha, reason="already handled")
-            prev = conn.execute("SELECT id, sha256, processed_at FROM files WHERE path = ? AND state = 'done'"
-                                " AND sha256 != ? ORDER BY id DESC LIMIT 1", (str(p), sha)).fetchone()
-            status = "taken"
-            if prev is not None:
-                status = "revision"
-                conn.execute("UPDATE files SET revision_of = ? WHERE id = ?", (prev[0], file_id))
-                Store.audit(conn, at, "file-revised", file_id=file_id, detail={"path": str(p), "sha256": sha,
-                                                                              "previous": prev[0]})
-                alert = Alert(kind="file-revised", dedup_key=f"file-revised|{file_id}", created_at=at,
-                              data={"file": p.name, "path": str(p), "sha256": sha,
-                                    "reason": "a file at a known path arrived with different content;"
-                                              " its rows are counted as new rows",
-                                    "previous": {"id": prev[0], "sha256": prev[1], "processed_at": prev[2]}})
-                if outbox.enqueue(conn, alert, channels):
-                    new_alerts.append(alert.dedup_key)
-            kind = str(getattr(export, "kind", "values"))
-            density = _density(export, profile)
-            if kind == "summary":
-                n_values = self._take_summaries(conn, file_id, p, export, density, at, verdicts, new_alerts)
-            else:
-                n_values = self._take_values(conn, file_id, p, export, density, now, verdicts, new_alerts, closed)
-            target = self._plan_target(conn, self.config.state.archive, p.name, now)
-            n_bad = _count(getattr(export, "bad_rows", None))
-            conn.execute("UPDATE files SET state='done', processed_at=?, archived_path=?, kind=?, n_values=?,"
-                         " n_bad_rows=? WHERE id=?", (at, str(target), kind, n_values, n_bad, file_id))
-            Store.audit(conn, at, "file-taken", file_id=file_id,
-                        detail={"path": str(p), "sha256": sha, "kind": kind, "values": n_values, "bad_rows": n_bad,
-                                "profile": getattr(profile, "name", None), "archived_path": str(target)})
-        self._maybe_crash("after-commit")
-        self._maybe_crash("before-archive")
-        moved = self._finish_move(file_id, p, target, "done")
-        return FileOutcome(str(p), status, file_id=file_id, sha256=sha, n_values=n_values, lots_closed=tuple(closed),
-                           verdicts=tuple(verdicts), alerts=tuple(new_alerts), moved_to=moved)
-
-    def _take_values(self, conn: sqlite3.Connection, file_id: int, p: Path, export: Any, density: float | None,
-                     now: datetime, verdicts: list[Verdict], new_alerts: list[str], closed: list[str]) -> int:
-        rows: pd.DataFrame = export.rows
-        n = len(rows)
-        if n == 0 and not _markers(export):
-            return 0
-        at, ts = utc_iso(now), now.timestamp()
-        line_c = _texts(rows, "line", n)
-        prod_c = _texts(rows, "product", n)
-        lot_c = _texts(rows, "lot", n)
-        keys = [LotKey(a, b, c) for a, b, c in zip(line_c, prod_c, lot_c)]
-        src = rows["source_line"].to_numpy(dtype=np.int64).tolist() if "source_line" in rows else list(range(1, n + 1))
-        vals = rows["value"].to_numpy(dtype=np.float64)
-        value_c = [float(v) if np.isfinite(v) else None for v in vals.tolist()]
-        unit_c = _texts(rows, "unit", n, default=getattr(export, "unit", "") or "g")
-        head_c = _texts(rows, "head", n)
-        time_c = _times(rows, n)
-        open_rows = conn.execute("SELECT id, line, product, lot FROM lots WHERE state = 'open' ORDER BY id").fetchall()
-        open_by_line = {r[1]: LotKey(r[1], r[2], r[3]) for r in open_rows}
-        plan = lots.plan_file(open_by_line, lots.find_runs(keys), src, _markers(export))
-        crashed_check = False
-        for step in plan.steps:
-            if isinstance(step, lots.Segment):
-                lot_id, seq0 = self._open_lot(conn, step.key, at, ts, step.stop - step.start, file_id)
-                k = step.key
-                conn.executemany(
-                    "INSERT INTO lot_values(lot_id, line, product, lot, seq, value, unit, density, head, timestamp,"
-                    " file_id, source_line) VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
-                    [(lot_id, k.line, k.product, k.lot, seq0 + j, value_c[i], unit_c[i], density, head_c[i],
-                      time_c[i], file_id, src[i]) for j, i in enumerate(range(step.start, step.stop))])
-                if not crashed_check:
-                    crashed_check = True
-                    self._maybe_crash("mid-values")
-            else:
-                v = self._close_lot(conn, step.key, step.reason, at, file_id, new_alerts)
-                if v is not None:
-                    verdicts.append(v)
-                    closed.append(_lot_name(step.key))
-        return n
-
-    def _open_lot(self, conn: sqlite3.Connection, key: LotKey, at: str, ts: float, count: int,
-                  file_id: int) -> tuple[int, int]:
-        """Make ``key`` the open lot (creating or reopening it), add ``count`` to it; return (id, first seq)."""
-        row = conn.execute("SELECT id, state, n FROM lots WHERE line=? AND product=? AND lot=?",
-                           (key.line, key.product, key.lot)).fetchone()
-        if row is None:
-            cur = conn.execute("INSERT INTO lots(line, product, lot, state, opened_at, last_value_at, last_value_ts, n)"
-                               " VALUES (?,?,?,'open',?,?,?,?)", (key.line, key.product, key.lot, at, at, ts, count))
-            Store.audit(conn, at, "lot-opened", file_id=file_id, line=key.line, product=key.product, lot=key.lot)
-            return int(cur.lastrowid), 1
-        lot_id, state, n = row
-        if state == "closed":
-            conn.execute("UPDATE lots SET state='open', closed_at=NULL, close_reason=NULL, late_values=late_values+?"
-                         " WHERE id=?", (count, lot_id))
-            Store.audit(conn, at, "lot-reopened", file_id=file_id, line=key.line, product=key.product, lot=key.lot,
-                        detail={"late_values": count, "values_before": n,
-                                "policy": "late values reopen the lot; it is judged again over all its values"})
-        conn.execute("UPDATE lots SET n = n + ?, last_value_at = ?, last_value_ts = ? WHERE id = ?",
-                     (count, at, ts, lot_id))
-        return int(lot_id), int(n) + 1
-
-    def _close_lot(self, conn: sqlite3.Connection, key: LotKey, reason: str, at: str, file_id: int | None,
-                   new_alerts: list[str]) -> Verdict | None:
-        row = conn.execute("SELECT id FROM lots WHERE line=? AND product=? AND lot=? AND state='open'",
-                           (key.line, key.product, key.lot)).fetchone()
-        if row is None:
-            return None
-        lot_id = int(row[0])
-        conn.execute("UPDATE lots SET state='closed', closed_at=?, close_reason=?, times_closed=times_closed+1"
-                     " WHERE id=?", (at, reason, lot_id))
-        Store.audit(conn, at, "lot-closed", file_id=file_id, line=key.line, product=key.product, lot=key.lot,
-                    detail={"reason": reason})
-        rule = match_rule(self.rules, key.product)
-        data, problem = judge.load_lot_values(conn, lot_id, key, rule)
-        verdict = judge.judge(data, rule, problem, self._engine())
-        alert = judge.record_verdict(conn, verdict, rule, data, at=at, channels=self.config.alerts.channels,
-                                     lot_id=lot_id, close_reason=reason, file_id=file_id)
-        if alert is not None:
-            new_alerts.append(alert.dedup_key)
-        return verdict
-
-    def _take_summaries(self, conn: sqlite3.Connection, file_id: int, p: Path, export: Any, density: float | None,
-                        at: str, verdicts: list[Verdict], new_alerts: list[str]) -> int:
-        s: pd.DataFrame = export.summaries
-        n = len(s)
-        line_c, prod_c, lot_c = _texts(s, "line", n), _texts(s, "product", n), _texts(s, "lot", n)
-        unit_c = _texts(s, "unit", n, default=getattr(export, "unit", "") or "g")
-        time_c = _times(s, n)
-        src = s["source_line"].to_numpy(dtype=np.int64).tolist() if "source_line" in s else list(range(1, n + 1))
-        ns = s["n"].to_numpy(dtype=np.int64).tolist()
-        means = s["mean"].to_numpy(dtype=np.float64).tolist()
-        sds = s["sd"].to_numpy(dtype=np.float64).tolist()
-        for i in range(n):
-            key = LotKey(line_c[i], prod_c[i], lot_c[i])
-            cur = conn.execute("INSERT INTO lot_summaries(file_id, source_line, line, product, lot, n, mean, sd, unit,"
-                               " density, timestamp) VALUES (?,?,?,?,?,?,?,?,?,?,?)",
-                               (file_id, src[i], key.line, key.product, key.lot, ns[i], means[i], sds[i], unit_c[i],
-                                density, time_c[i]))
-            rule = match_rule(self.rules, key.product)
-            data, problem = judge.summary_lot(key, ns[i], means[i], sds[i], unit_c[i], density, rule, str(p))
-            verdict = judge.judge(data, rule, problem, self._engine())
-            alert = judge.record_verdict(conn, verdict, rule, data, at=at, channels=self.config.alerts.channels,
-                                         summary_id=int(cur.lastrowid), close_reason="summary", file_id=file_id)
-            verdicts.append(verdict)
-            if alert is not None:
-                new_alerts.append(alert.dedup_key)
-        return n
-
-    # -- rejected files, moves -----------------------------------------------------------------
-    def _reject(self, file_id: int, p: Path, sha: str, now: datetime, reason: str,
-                exc: ExportError | None) -> FileOutcome:
-        at = utc_iso(now)
-        with self.store.write() as conn:
-            target = self._plan_target(conn, self.config.state.quarantine, p.name, now)
-            conn.execute("UPDATE files SET state='rejected', processed_at=?, archived_path=?, reason=? WHERE id=?",
-                         (at, str(target), reason, file_id))
-            Store.audit(conn, at, "file-rejected", file_id=file_id, detail={"path": str(p), "sha256": sha,
-                                                                           "reason": reason})
-            data = {"file": p.name, "path": str(p), "sha256": sha, "reason": reason,
-                    "quarantined_to": str(target)}
-            if exc is not None:
-                data.update({"line": exc.line, "key": exc.key})
-            alert = Alert(kind="file-rejected", dedup_key=f"file-rejected|{file_id}", created_at=at, data=data)
-            new = outbox.enqueue(conn, alert, self.config.alerts.channels)
-        moved = self._finish_move(file_id, p, target, "rejected")
-        return FileOutcome(str(p), "rejected", file_id=file_id, sha256=sha, reason=reason, moved_to=moved,
-                           alerts=(alert.dedup_key,) if new else ())
-
-    def _finish_move(self, file_id: int, src: Path, target: Path, state: str) -> str | None:
-        """Move ``src`` to its planned ``target`` (another free name if taken) and record it."""
-        if state == "rejected":
-            with self.store.read() as conn:
-                reason = conn.execute("SELECT reason, sha256, processed_at FROM files WHERE id=?",
-                                      (file_id,)).fetchone()
+    # -- moves ---------------------------------------------------------------------------------
+    def _finish_move(self, file_id: int, src: Path, target: Path, state: str, *, call: int = 0) -> str | None:
+        """Move ``src`` to its planned ``target`` (a free name beside it if taken); record it later."""
         final = target
         try:
             if src.exists():
@@ -394,39 +333,55 @@ class Intake:
                 log.warning("file %s (id %s) is neither in the drop folder nor at %s", src, file_id, target)
                 return None
             if state == "rejected":
-                archive.write_reason(final, _reason_text(src, final, *reason))
+                with self.store.read() as conn:
+                    row = conn.execute("SELECT reason, sha256, processed_at FROM files WHERE id=?",
+                                       (file_id,)).fetchone()
+                archive.write_reason(final, _reason_text(src, final, *row))
         except OSError as exc:
             log.error("cannot move %s to %s: %s; will retry", src, final, exc)
             return None
-        self._maybe_crash("after-archive")
-        with self.store.write() as conn:
-            conn.execute("UPDATE files SET archived_at=?, archived_path=? WHERE id=?",
-                         (utc_iso(self.clock()), str(final), file_id))
+        self._maybe_crash("after-archive", call)
+        self._moved.append((utc_iso(self.clock()), str(final), file_id))
+        if len(self._moved) >= MAX_UNRECORDED_MOVES:
+            self.flush()
         return str(final)
+
+    @contextmanager
+    def _write(self) -> Iterator[sqlite3.Connection]:
+        """A write transaction that also records the archive moves done since the last one."""
+        pending = list(self._moved)
+        with self.store.write() as conn:
+            if pending:
+                conn.executemany("UPDATE files SET archived_at=?, archived_path=? WHERE id=?", pending)
+            yield conn
+        del self._moved[:len(pending)]
+
+    def flush(self) -> None:
+        """Record archive moves not recorded yet (call at stop; ``close_idle`` and ``recover`` do it too).
+
+        Until then a move is only on disk; a crash is harmless: ``recover`` finds the file in the archive.
+        """
+        with self._lock:
+            if self._moved:
+                with self._write():
+                    pass
 
     # -- periodic and start-up work ------------------------------------------------------------
     def close_idle(self, now: datetime | None = None, *, idle_seconds_override: float | None = None) -> list[Verdict]:
         """Close and judge every open lot idle for its rule's ``idle_minutes`` (or the override) at ``now``."""
         with self._lock:
             moment = now or self.clock()
-            at, ts = utc_iso(moment), moment.timestamp()
             default_idle = float(RULE_KEYS["idle_minutes"][0]) * 60.0
+            rules = list(self.rules)
 
             def idle_for(key: LotKey) -> float:
                 if idle_seconds_override is not None:
                     return idle_seconds_override
-                rule = match_rule(self.rules, key.product)
+                rule = match_rule(rules, key.product)
                 return rule.idle_minutes * 60.0 if rule else default_idle
 
-            out: list[Verdict] = []
-            with self.store.write() as conn:
-                rows = conn.execute("SELECT line, product, lot, last_value_ts FROM lots WHERE state='open'"
-                                    " ORDER BY id").fetchall()
-                for key in lots.idle_lots([(LotKey(r[0], r[1], r[2]), r[3]) for r in rows], ts, idle_for):
-                    v = self._close_lot(conn, key, lots.IDLE, at, None, [])
-                    if v is not None:
-                        out.append(v)
-            return out
+            with self._write() as conn:  # also records pending archive moves
+                return accumulate.close_idle_lots(conn, self._judging(), moment, idle_for)
 
     def recover(self) -> list[FileOutcome]:
         """Start-up: finish moves of handled files left in place; retry files left 'processing'."""
@@ -436,25 +391,41 @@ class Intake:
                 rows = conn.execute("SELECT id, path, archived_path, state, sha256 FROM files"
                                     " WHERE archived_at IS NULL ORDER BY id").fetchall()
             for file_id, path, target, state, sha in rows:
-                if state == "processing":
-                    outcome = self.process(path)
-                    out.append(outcome)
-                    if outcome.file_id != file_id:
-                        self._abandon(file_id, path, sha, outcome)
-                    continue
                 src = Path(path)
+                if state == "processing":
+                    out.append(self._retry(file_id, src, sha))
+                    continue
                 if src.exists() and _sha_of(src) != sha:
                     self._skip_move(file_id, path, "the drop folder now holds different content under this"
-                                                   " name; the scan takes it as a new file")
+                                                   " name; it is taken as a new file")
                     continue
                 moved = self._finish_move(file_id, src, Path(target), state)
                 out.append(FileOutcome(path, "archived", file_id=file_id, sha256=sha, moved_to=moved,
                                        reason=f"already {state}; finished its move"))
+            self.flush()
             return out
+
+    def _retry(self, file_id: int, src: Path, sha: str) -> FileOutcome:
+        with self._write() as conn:
+            conn.execute("UPDATE files SET attempts = attempts + 1 WHERE id = ?", (file_id,))
+            attempts = int(conn.execute("SELECT attempts FROM files WHERE id = ?", (file_id,)).fetchone()[0])
+        if attempts > MAX_ATTEMPTS and src.exists() and _sha_of(src) == sha:
+            now = self.clock()
+            it = _Item(src, 0, sha=sha, file_id=file_id,
+                       error=(f"processing this file did not finish in {attempts - 1} attempts (the daemon stopped"
+                              " each time); quarantined so it cannot stop the daemon again", None))
+            with self._write() as conn:
+                self._mark_rejected(conn, it, now, utc_iso(now))
+            moved = self._finish_move(file_id, src, *it.move) if it.move else None
+            return replace(it.outcome, moved_to=moved) if it.outcome else FileOutcome(str(src), "rejected")
+        outcome = self.process(src)
+        if outcome.file_id != file_id:
+            self._abandon(file_id, str(src), sha, outcome)
+        return outcome
 
     def _skip_move(self, file_id: int, path: str, why: str) -> None:
         at = utc_iso(self.clock())
-        with self.store.write() as conn:
+        with self._write() as conn:
             conn.execute("UPDATE files SET archived_at=? WHERE id=?", (at, file_id))
             Store.audit(conn, at, "file-move-skipped", file_id=file_id, detail={"path": path, "why": why})
 
@@ -465,7 +436,7 @@ class Intake:
             reason = "the file disappeared from the drop folder before it was processed; its values are not stored"
         else:
             reason = f"the file changed before it was processed; the new content is file {outcome.file_id}"
-        with self.store.write() as conn:
+        with self._write() as conn:
             conn.execute("UPDATE files SET state='rejected', processed_at=?, archived_at=?, reason=? WHERE id=?",
                          (at, at, reason, file_id))
             Store.audit(conn, at, "file-rejected", file_id=file_id, detail={"path": path, "reason": reason})
@@ -475,14 +446,15 @@ class Intake:
                 outbox.enqueue(conn, alert, self.config.alerts.channels)
 
     # -- helpers -------------------------------------------------------------------------------
-    def _engine(self) -> judge.Evaluator:
-        if self._evaluate is not None:
-            return self._evaluate
-        from monitor import engine
-        return engine.evaluate
+    def _judging(self) -> Judging:
+        evaluate = self._evaluate
+        if evaluate is None:
+            from monitor import engine
+            evaluate = engine.evaluate
+        return Judging(rules=tuple(self.rules), evaluate=evaluate, channels=tuple(self.config.alerts.channels))
 
-    def _maybe_crash(self, point: str) -> None:
-        if self._crash is not None and self._crash == (point, self._calls):
+    def _maybe_crash(self, point: str, call: int) -> None:
+        if self._crash is not None and self._crash == (point, call):
             os.kill(os.getpid(), signal.SIGKILL)
 
 
@@ -501,71 +473,6 @@ def _sha_of(path: Path) -> str | None:
         return hashlib.sha256(path.read_bytes()).hexdigest()
     except OSError:
         return None
-
-
-def _texts(df: pd.DataFrame, col: str, n: int, default: str = "") -> list[str]:
-    if col not in df:
-        return [default] * n
-    s = df[col]
-    return [default if (x is None or (isinstance(x, float) and x != x) or x is pd.NA) else str(x)
-            for x in s.tolist()]
-
-
-def _times(df: pd.DataFrame, n: int) -> list[str | None]:
-    if "timestamp" not in df:
-        return [None] * n
-    out: list[str | None] = []
-    for x in df["timestamp"].tolist():
-        if x is None or x is pd.NaT or (isinstance(x, float) and x != x) or x is pd.NA:
-            out.append(None)
-        elif hasattr(x, "isoformat"):
-            out.append(x.isoformat())
-        else:
-            out.append(str(x))
-    return out
-
-
-def _markers(export: Any) -> list[lots.Marker]:
-    """End-of-lot markers of an export, whatever container the reader uses (frame, ints, records)."""
-    m = getattr(export, "end_of_lot", None)
-    if m is None:
-        return []
-    if isinstance(m, pd.DataFrame):
-        sl = m["source_line"].tolist() if "source_line" in m else []
-        lc = m["lot"].tolist() if "lot" in m else [None] * len(sl)
-        return [lots.Marker(int(a), lot=None if b is None or (isinstance(b, float) and b != b) else str(b))
-                for a, b in zip(sl, lc)]
-    out: list[lots.Marker] = []
-    for item in m:
-        if isinstance(item, (int, np.integer)):
-            out.append(lots.Marker(int(item)))
-        elif hasattr(item, "source_line"):
-            line = getattr(item, "line", None)
-            lot = getattr(item, "lot", None)
-            out.append(lots.Marker(int(item.source_line), lot=None if lot is None else str(lot),
-                                   line=None if line is None else str(line)))
-        elif isinstance(item, (tuple, list)) and item:
-            # the reader's form: (source line, lot code the marker ends)
-            out.append(lots.Marker(int(item[0]), lot=None if len(item) < 2 or item[1] is None else str(item[1])))
-    return out
-
-
-def _density(export: Any, profile: Any) -> float | None:
-    d = getattr(export, "density", None)
-    if d is None:
-        d = getattr(profile, "density", None)
-    return None if d is None else float(d)
-
-
-def _count(x: Any) -> int:
-    if x is None:
-        return 0
-    if isinstance(x, (int, np.integer)):
-        return int(x)
-    try:
-        return len(x)
-    except TypeError:
-        return 0
 
 
 def _reason_text(src: Path, target: Path, reason: str | None, sha: str | None, at: str | None) -> str:

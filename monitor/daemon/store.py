@@ -49,12 +49,14 @@ CREATE TABLE IF NOT EXISTS files (
     kind          TEXT,                      -- "values" | "summary" (reader's export kind)
     n_values      INTEGER NOT NULL DEFAULT 0,
     n_bad_rows    INTEGER NOT NULL DEFAULT 0,
+    attempts      INTEGER NOT NULL DEFAULT 0,  -- start-ups that found this file still 'processing'
     duplicate_of  INTEGER REFERENCES files(id),
     revision_of   INTEGER REFERENCES files(id)
 );
 CREATE INDEX IF NOT EXISTS files_sha ON files(sha256, state);
 CREATE INDEX IF NOT EXISTS files_path ON files(path, state);
 CREATE INDEX IF NOT EXISTS files_unarchived ON files(state) WHERE archived_at IS NULL;
+CREATE INDEX IF NOT EXISTS files_archived_path ON files(archived_path);
 CREATE TABLE IF NOT EXISTS lots (
     id            INTEGER PRIMARY KEY,
     line          TEXT NOT NULL,

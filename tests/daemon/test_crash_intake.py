@@ -27,8 +27,11 @@ DRIVER = textwrap.dedent("""
     store = Store.open(cfg.state.folder)
     intake = Intake(cfg, load_rule_set(cfg), store)
     intake.recover()
-    for p in sorted(cfg.watch.folder.iterdir()):
-        if p.is_file() and cfg.watch.accepts(p.name):
+    ready = [p for p in sorted(cfg.watch.folder.iterdir()) if p.is_file() and cfg.watch.accepts(p.name)]
+    if len(sys.argv) > 2 and sys.argv[2] == "batch":
+        intake.process_batch(ready)
+    else:
+        for p in ready:
             intake.process(p)
     intake.close_idle(idle_seconds_override=0)
     store.close()
@@ -71,11 +74,11 @@ def expected_values(files: dict[str, bytes]) -> Counter:
     return c
 
 
-def run_driver(script: Path, config: Path, crash: str | None) -> int:
+def run_driver(script: Path, config: Path, crash: str | None, mode: str = "one") -> int:
     env = {k: v for k, v in os.environ.items() if k != "LOTWARDEN_CRASH_AT"}
     if crash:
         env["LOTWARDEN_CRASH_AT"] = crash
-    proc = subprocess.run([sys.executable, str(script), str(config)], env=env, capture_output=True, timeout=120)
+    proc = subprocess.run([sys.executable, str(script), str(config), mode], env=env, capture_output=True, timeout=120)
     if proc.returncode not in (0, -signal.SIGKILL):
         raise AssertionError(proc.stderr.decode(errors="replace"))
     return proc.returncode
@@ -133,6 +136,8 @@ def make_setup_module():
     ["after-commit:3", "after-archive:3"],    # 03 committed not moved; 06 moved not recorded
     ["mid-values:1", "before-archive:1"],     # the first file twice: rolled back, then committed not moved
     ["mid-values:7", "after-commit:1"],       # the last file rolled back; on restart committed, not moved
+    ["batch", "mid-values:6", "after-archive:2"],  # one commit for all: the whole batch rolled back, then
+                                                   # committed and the second file moved, not recorded
 ])
 def test_sigkill_then_restart_loses_and_doubles_nothing(tmp_path: Path, make_setup_module, reference: dict,
                                                         crashes: list[str]) -> None:
@@ -141,9 +146,10 @@ def test_sigkill_then_restart_loses_and_doubles_nothing(tmp_path: Path, make_set
     files = make_files(tmp_path / "drop")
     script = tmp_path / "driver.py"
     script.write_text(DRIVER)
-    for point in crashes:
-        assert run_driver(script, cfg, point) == -signal.SIGKILL, f"hook {point} did not fire"
-    assert run_driver(script, cfg, None) == 0
+    mode = "batch" if crashes[0] == "batch" else "one"
+    for point in crashes[1:] if mode == "batch" else crashes:
+        assert run_driver(script, cfg, point, mode) == -signal.SIGKILL, f"hook {point} did not fire"
+    assert run_driver(script, cfg, None, mode) == 0
     got = state_of(tmp_path)
     # every value exactly once, checked against Python's csv module reading the same files
     assert got["values"] == expected_values(files)

@@ -49,6 +49,9 @@ def test_values_are_stored_once_in_order_and_the_file_archived(intake_env, clock
     assert out.moved_to == str(target) and target.read_bytes() == original
     assert list(drop.iterdir()) == []
     row = store.conn.execute("SELECT state, archived_path, archived_at IS NOT NULL, size FROM files").fetchone()
+    assert row == ("done", str(target), 0, len(original))  # the move is recorded with the next write
+    intake.flush()
+    row = store.conn.execute("SELECT state, archived_path, archived_at IS NOT NULL, size FROM files").fetchone()
     assert row == ("done", str(target), 1, len(original))
     assert count(store, "SELECT count(*) FROM audit WHERE event='file-taken'") == 1
     assert "taken L1-oat-0600.csv: 6 values" in out.describe()
@@ -129,3 +132,56 @@ def test_recover_finishes_moves_and_retries_processing(intake_env, clock) -> Non
     assert count(store, "SELECT count(*) FROM files") == 1
     assert count(store, "SELECT count(*) FROM lot_values") == 3
     assert intake.recover() == []
+
+
+def test_a_file_that_keeps_stopping_the_daemon_is_quarantined(intake_env) -> None:
+    """A file found 'processing' at more than three start-ups is quarantined instead of retried again."""
+    import hashlib
+    import os
+
+    cfg, store, intake, drop = intake_env
+    p = write_export(drop, "L1-poison.csv", oat("OAT-24A101", [500.0, 501.0]))
+    st = os.stat(p)
+    with store.write() as conn:
+        conn.execute("INSERT INTO files(sha256, path, size, mtime, first_seen_at, state, attempts) VALUES"
+                     " (?,?,?,?,?,'processing',3)", (hashlib.sha256(p.read_bytes()).hexdigest(), str(p),
+                                                      st.st_size, st.st_mtime, "2026-11-30T06:00:00+00:00"))
+    (out,) = intake.recover()
+    assert out.status == "rejected" and "3 attempts" in out.reason
+    assert (cfg.state.quarantine / "2026-11-30" / "L1-poison.csv").exists()
+    assert count(store, "SELECT count(*) FROM lot_values") == 0
+    assert count(store, "SELECT count(*) FROM alerts WHERE kind='file-rejected'") == 1
+
+
+def test_a_batch_gives_the_same_result_as_one_by_one(intake_env, tmp_path: Path, make_setup, clock) -> None:
+    """process_batch (one commit) stores the same values, lots and alerts as process on each file in turn."""
+    from monitor.daemon.config import load_config, load_rule_set
+    from monitor.daemon.intake import Intake
+    from monitor.daemon.store import Store
+
+    cfg, store, intake, drop = intake_env
+    specs = {"1.csv": oat("OAT-24A101", [500.0, 501.0, 502.0]), "2.csv": oat("OAT-24A101", [503.0, 499.0]),
+             "3.csv": oat("OAT-24A102", [500.5, 500.1])}
+    for name, rows in specs.items():
+        write_export(drop, name, rows)
+    (drop / "4-copy.csv").write_bytes((drop / "3.csv").read_bytes())  # duplicate inside the batch
+    (drop / "5-bad.csv").write_bytes(b"\x00\x01")
+    outs = intake.process_batch(sorted(drop.iterdir()))
+    assert [o.status for o in outs] == ["taken", "taken", "taken", "duplicate", "rejected"]
+    assert outs[2].lots_closed == ("L1/OAT-500/OAT-24A101",)
+    # the same files one by one into a second store
+    root2 = tmp_path / "one-by-one"
+    cfg2 = load_config(make_setup(root2))
+    drop2 = cfg2.watch.folder
+    for name, rows in specs.items():
+        write_export(drop2, name, rows)
+    (drop2 / "4-copy.csv").write_bytes((drop2 / "3.csv").read_bytes())
+    (drop2 / "5-bad.csv").write_bytes(b"\x00\x01")
+    with Store.open(cfg2.state.folder) as store2:
+        intake2 = Intake(cfg2, load_rule_set(cfg2), store2, clock=clock)
+        assert [intake2.process(p).status for p in sorted(drop2.iterdir())] == [o.status for o in outs]
+        for sql in ("SELECT lot, seq, value FROM lot_values ORDER BY id", "SELECT kind, dedup_key FROM alerts",
+                    "SELECT lot, state, n FROM lots ORDER BY id", "SELECT state FROM files ORDER BY id"):
+            assert store.conn.execute(sql).fetchall() == store2.conn.execute(sql).fetchall(), sql
+    assert [v for (v,) in store.conn.execute("SELECT value FROM lot_values ORDER BY id")] == \
+        [r[3] for name in ("1.csv", "2.csv", "3.csv") for r in specs[name]]  # values as written, file order
