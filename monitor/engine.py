@@ -81,12 +81,15 @@ def evaluate_many(lots: Sequence[LotData], rule: Rule) -> list[Verdict]:
     for i in np.flatnonzero(~has_values):
         s = lots[i].summary
         assert s is not None
-        good = (isinstance(s.n, (int, np.integer)) and s.n >= 0 and np.isfinite(s.mean)
-                and np.isfinite(s.sd) and s.sd >= 0)
+        whole = isinstance(s.n, (int, np.integer)) or (isinstance(s.n, float) and s.n.is_integer())
+        # a mean is needed from n = 1 on, an sd from n = 2 on (a lone unit's sd may be NaN)
+        good = bool(whole and s.n >= 0 and (s.n < 1 or np.isfinite(s.mean))
+                    and (s.n < 2 or (np.isfinite(s.sd) and s.sd >= 0)))
         summary_ok[i] = good
         n[i] = int(s.n) if good else 0
         mean[i] = s.mean if good and s.n >= 1 else np.nan
-        var[i] = float(s.sd) ** 2 if good and s.n >= 2 else np.nan
+        with np.errstate(all="ignore"):                          # an absurd sd overflows to inf: gate _BAD
+            var[i] = np.float64(s.sd) ** 2 if good and s.n >= 2 else np.nan
 
     with np.errstate(all="ignore"):
         sd = np.sqrt(var)

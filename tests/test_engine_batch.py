@@ -10,7 +10,7 @@ from monitor.engine import evaluate, evaluate_many
 from monitor.lot import LotData, LotKey, LotSummary
 from monitor.rulebook import NormalityRule, Rule
 
-pytestmark = pytest.mark.filterwarnings("error")
+pytestmark = [pytest.mark.filterwarnings("error::RuntimeWarning"), pytest.mark.filterwarnings("error::UserWarning")]
 
 
 def _random_lots(seed: int, count: int) -> list[LotData]:
@@ -95,7 +95,7 @@ values = st.lists(st.one_of(st.floats(339.0, 341.0), st.sampled_from([340.0, flo
                   max_size=25)
 
 
-@settings(max_examples=40, deadline=None)
+@settings(max_examples=40, deadline=None, derandomize=True)
 @given(st.lists(values, min_size=1, max_size=6), st.sampled_from(RULES))
 def test_fuzzed_batches_equal_one_by_one(batches, r):
     """Any small batch of arbitrary lots (NaN, inf, ties, constants) gives the same Verdicts lot by lot."""
