@@ -12,6 +12,7 @@ from typing import Any, Mapping
 
 from monitor.alerts.settings import ALERTS_KEYS, SECTION_KEYS, AlertSettings, parse_alerts
 from monitor.errors import ConfigError
+from monitor.ingest.profile import PROFILE_KEYS, FeedProfile
 from monitor.rulebook import Rule, load_rules
 
 DEFAULT_INCLUDE = ("*.csv", "*.txt", "*.tsv")
@@ -31,8 +32,9 @@ CONFIG_KEYS: dict[str, tuple[Any, str]] = {
     "state.folder": (None, "folder of the state database lotwarden.db (required; local disk, not a share)"),
     "state.archive": ("<state.folder>/archive", "where processed files move, in dated subfolders YYYY-MM-DD"),
     "state.quarantine": ("<state.folder>/quarantine", "where rejected files move, with <name>.reason.txt"),
-    "profiles.<name>": ({}, "a feed profile: how one weigher's exports are read (see monitor.ingest.profile)"),
+    "profiles.<name>": ({}, "a feed profile: how one weigher's exports are read; first matching profile wins"),
 }
+CONFIG_KEYS.update({f"profiles.<name>.{k}": v for k, v in PROFILE_KEYS.items()})
 # The [alerts] keys come from the alert settings' own tables, so this table follows their changes.
 CONFIG_KEYS.update({f"alerts.{k}": v for k, v in ALERTS_KEYS.items()})
 for _section_name, _keys in SECTION_KEYS.items():
@@ -74,14 +76,6 @@ class StateSettings:
 
 
 @dataclass(frozen=True)
-class RawProfile:
-    """A `[profiles.<name>]` table kept as parsed TOML until the reader's FeedProfile can take it."""
-
-    name: str
-    table: Mapping[str, Any]
-
-
-@dataclass(frozen=True)
 class Config:
     """The whole daemon config. ``content_hash`` is the SHA-256 of the file's bytes (audit records)."""
 
@@ -91,7 +85,7 @@ class Config:
     watch: WatchSettings
     state: StateSettings
     alerts: AlertSettings
-    profiles: tuple[Any, ...] = ()
+    profiles: tuple[FeedProfile, ...] = ()
 
     @property
     def version(self) -> str:
@@ -150,21 +144,14 @@ def parse_config(table: Mapping[str, Any], *, source: Path, content_hash: str = 
                   alerts=alerts, profiles=profiles)
 
 
-def parse_profiles(table: Mapping[str, Any], *, source: str) -> tuple[Any, ...]:
-    """The `[profiles.<name>]` tables as the reader's FeedProfile values (raw tables until it exists)."""
-    try:
-        from monitor.ingest.profile import FeedProfile
-    except ImportError:  # the reader package is not installed in this tree yet
-        FeedProfile = None  # type: ignore[assignment]  # noqa: N806
-    out: list[Any] = []
+def parse_profiles(table: Mapping[str, Any], *, source: str) -> tuple[FeedProfile, ...]:
+    """The `[profiles.<name>]` tables as the reader's FeedProfile values, in file order (first match wins)."""
+    out: list[FeedProfile] = []
     for name, sub in table.items():
         if not isinstance(sub, dict):
             raise ConfigError(f"profiles.{name} must be a table: [profiles.{name}]", path=source,
                               key=f"profiles.{name}")
-        if FeedProfile is None:
-            out.append(RawProfile(name=name, table=sub))
-        else:
-            out.append(FeedProfile.from_toml(sub, source=source, name=name))
+        out.append(FeedProfile.from_toml(sub, source=source, name=name))
     return tuple(out)
 
 

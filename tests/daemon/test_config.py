@@ -125,3 +125,31 @@ def test_accepts_filters_bare_names(tmp_path: Path, make_setup) -> None:
     assert w.accepts("export.TXT") is False  # fnmatchcase: patterns are case-sensitive
     for name in (".L1.csv", "L1.csv.tmp", "L1.csv.part", "~L1.csv", "L1.csv.swp", "L1.csv.reason.txt", "L1.xlsx"):
         assert not w.accepts(name), name
+
+
+def test_profiles_become_feed_profiles_in_file_order(tmp_path: Path, make_setup) -> None:
+    """[profiles.<name>] tables are validated by the reader's FeedProfile; a bad key names its path."""
+    p = make_setup(tmp_path, extra="""
+        [profiles.hall2]
+        match = ["L2-*.txt"]
+        delimiter = ";"
+        decimal = ","
+
+        [profiles.hall3]
+        match = ["L3-*.csv"]
+        density = 1.045
+        """)
+    cfg = load_config(p)
+    assert [pr.name for pr in cfg.profiles] == ["hall2", "hall3"]
+    assert cfg.profiles[1].density == 1.045
+    assert "profiles.<name>.density" in CONFIG_KEYS
+    p.write_text(p.read_text().replace("density = 1.045", "densty = 1.045"))
+    with pytest.raises(ConfigError) as info:
+        load_config(p)
+    assert info.value.key == "profiles.hall3.densty" and info.value.path == str(p)
+
+
+def test_the_shipped_config_loads(repo_root: Path) -> None:
+    """config/lotwarden.toml of the repository is valid."""
+    cfg = load_config(repo_root / "config" / "lotwarden.toml")
+    assert cfg.profiles and cfg.alerts.channels
