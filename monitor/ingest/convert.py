@@ -56,9 +56,12 @@ def parse_numbers(text: pa.Array, decimal: str) -> tuple[np.ndarray, np.ndarray]
 
 
 def parse_units(text: pa.Array, default: str) -> tuple[pa.Array, np.ndarray]:
-    """Canonical unit per row (an empty cell means ``default``) and a mask of unknown units."""
+    """Canonical unit per row (a blank cell means ``default``) and a mask of unknown units.
+
+    ``text`` may be untrimmed: each distinct spelling is stripped once.
+    """
     uniques = pc.unique(text).to_pylist()
-    table = {u: (canonical_unit(u) if u else default) for u in uniques}
+    table = {u: (canonical_unit(u) if u.strip() else default) for u in uniques}
     if len(uniques) == 1:  # the usual case: one unit for the whole file
         unit = table[uniques[0]]
         return pa.repeat(unit or "", len(text)), np.full(len(text), unit is None)
@@ -85,7 +88,8 @@ def parse_timestamps(text: pa.Array, fmt: str | None) -> tuple[pa.Array, np.ndar
     try:  # fast path: every non-empty cell is ISO 8601 without a zone
         filled = text if not empty.any() else pc.if_else(pa.array(empty), pa.scalar("2000-01-01"), text)
         pc.cast(filled, pa.timestamp("us"))
-        return pc.replace_substring(text, " ", "T", max_replacements=1), np.zeros(n, dtype=bool)
+        spaced = pc.any(pc.match_substring(text, " ")).as_py()
+        return (pc.replace_substring(text, " ", "T", max_replacements=1) if spaced else text), np.zeros(n, bool)
     except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
         pass
     iso = pc.replace_substring_regex(text, _ISO_SPACE, r"\1T")

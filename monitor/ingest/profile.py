@@ -201,6 +201,8 @@ def _parse(table: Mapping[str, Any], source: str, name: str) -> FeedProfile:
             raise fail("timestamp_format", f"timestamp_format = {v!r} — must be a strptime format "
                                            "such as \"%d.%m.%Y %H:%M:%S\"")
         values["timestamp_format"] = v
+    if values.get("decimal") == "," and values.get("delimiter") == ",":
+        raise fail("decimal", "decimal = ',' needs another delimiter than ','", hint='use delimiter = ";"')
     return FeedProfile(**values)
 
 

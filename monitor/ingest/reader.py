@@ -121,7 +121,8 @@ class _Rows:
         if canon not in self.index:
             return None
         if canon not in self.trimmed:
-            self.trimmed[canon] = convert.trim(self.raw.columns[self.index[canon]])
+            col = self.raw.columns[self.index[canon]]
+            self.trimmed[canon] = convert.trim(col) if self.raw.spaced else col
         return self.trimmed[canon]
 
     def flag(self, mask: np.ndarray, canon: str, reason: str) -> None:
@@ -194,10 +195,10 @@ class _Rows:
         return values
 
     def _units(self) -> pa.Array:
-        t = self.text("unit")
-        if t is None:
+        if "unit" not in self.index:
             return pa.repeat(self.prof.unit, self.n)
-        units, unknown = convert.parse_units(t, self.prof.unit)
+        # parse_units strips each distinct spelling itself: no need to trim a million cells first
+        units, unknown = convert.parse_units(self.raw.columns[self.index["unit"]], self.prof.unit)
         self.flag(unknown, "unit", f"unknown unit '{{v}}' — allowed: {ALLOWED_UNITS}")
         return units
 

@@ -31,6 +31,7 @@ class RawTable:
     lines: np.ndarray
     problems: tuple[RawProblem, ...]
     quoted: bool = False
+    spaced: bool = True     # False when no field can start or end with whitespace (trimming can be skipped)
 
     @property
     def size(self) -> int:
@@ -56,25 +57,29 @@ def split_body(buf: bytes, header: Header, name: str) -> RawTable:
     n_valid = table.num_rows
     if any(num is None for num, _ in invalid):
         raise ExportError("cannot number the rows of this file", path=name)
-    inv_num = np.array([num for num, _ in invalid], dtype=np.int64)
     total = n_valid + len(invalid)
-    valid_rec = np.setdiff1d(np.arange(1, total + 1, dtype=np.int64), inv_num, assume_unique=True)
-    # Physical line of record k = header line + k + newlines inside quoted fields of records before k.
-    extra = np.zeros(total + 1, dtype=np.int64)
+    if invalid:
+        inv_num = np.array([num for num, _ in invalid], dtype=np.int64)
+        valid_rec = np.setdiff1d(np.arange(1, total + 1, dtype=np.int64), inv_num, assume_unique=True)
+    else:
+        valid_rec = np.arange(1, total + 1, dtype=np.int64)
+    # Record k sits on line header.line + k as long as no record before it spans lines; the first one that
+    # does makes the file rejected (a missing closing quote swallows every row up to the next quote).
+    first_line = header.line + np.arange(total + 1, dtype=np.int64)
     quoted = buf.find(b'"', header.body_start) >= 0
     if quoted:
+        extra = np.zeros(total + 1, dtype=np.int64)
         if n_valid:
             extra[valid_rec] = np.sum([pc.count_substring(c, "\n").to_numpy(zero_copy_only=False)
                                        for c in columns], axis=0)
         for num, text in invalid:
             extra[num] = text.count("\n")
-    first_line = header.line + np.arange(total + 1, dtype=np.int64) + np.concatenate(([0], np.cumsum(extra)[:-1]))
-    if extra.any():  # a missing closing quote swallows every row up to the next quote: refuse, never lose rows
-        k = int(np.flatnonzero(extra)[0])
-        raise ExportError(f"a quoted field starting on this line runs over {int(extra[k]) + 1} lines; line breaks "
-                          "inside fields are not accepted, since a missing closing quote would swallow the rows "
-                          "after it", path=name, line=int(first_line[k]),
-                          hint='check the quote characters (") in this row')
+        if extra.any():
+            k = int(np.flatnonzero(extra)[0])
+            raise ExportError(f"a quoted field starting on this line runs over {int(extra[k]) + 1} lines; line "
+                              "breaks inside fields are not accepted, since a missing closing quote would "
+                              "swallow the rows after it", path=name, line=int(first_line[k]),
+                              hint='check the quote characters (") in this row')
     lines = first_line[valid_rec]
 
     problems: list[RawProblem] = []
@@ -97,7 +102,22 @@ def split_body(buf: bytes, header: Header, name: str) -> RawTable:
         order = pa.array(np.argsort(lines, kind="stable"))
         lines = lines[order.to_numpy()]
         columns = [c.take(order) for c in columns]
-    return RawTable(tuple(columns), lines, tuple(problems), quoted)
+    return RawTable(tuple(columns), lines, tuple(problems), quoted, _may_hold_spaces(buf, header))
+
+
+def _may_hold_spaces(buf: bytes, header: Header) -> bool:
+    """False only if the body is ASCII with no byte below 0x21 but line breaks (and a tab delimiter).
+
+    Every ASCII whitespace character is below 0x21, so such a body has no field to trim.
+    """
+    if not buf.isascii():
+        return True
+    body = np.frombuffer(buf, dtype=np.uint8, offset=header.body_start)
+    low = int(np.count_nonzero(body < 0x21))
+    allowed = buf.count(b"\n", header.body_start)
+    if header.delimiter == "\t":
+        allowed += buf.count(b"\t", header.body_start)
+    return low != allowed
 
 
 def _parse(body: memoryview, names: list[str], header: Header, name: str,

@@ -34,15 +34,17 @@ def decode(data: bytes, profile: FeedProfile, name: str) -> bytes:
     out: bytes | None = None  # set when the input already is the UTF-8 we want (no copy, no re-encode)
     if enc in ("auto", *FALLBACK_ENCODINGS, "utf-8"):
         if data.startswith(_UTF8_BOM):
-            _strict(data[len(_UTF8_BOM):], "utf-8", name, offset=len(_UTF8_BOM), raw=data)
             out = data[len(_UTF8_BOM):]
+            if not out.isascii():
+                _strict(out, "utf-8", name, offset=len(_UTF8_BOM), raw=data)
         elif enc != "utf-8" and data.startswith(_UTF32_BOMS):
             text = _strict(data, "utf-32", name, raw=data)
         elif enc != "utf-8" and data.startswith(_UTF16_BOMS):
             text = _strict(data, "utf-16", name, raw=data)
         else:
             try:
-                data.decode("utf-8")
+                if not data.isascii():  # ASCII is UTF-8; isascii() is far cheaper than decoding
+                    data.decode("utf-8")
                 out = data
             except UnicodeDecodeError as exc:
                 if enc in ("auto", "utf-8"):
@@ -88,17 +90,18 @@ def find_header(buf: bytes, profile: FeedProfile, name: str) -> Header:
             break
         pos, line = end + 1, line + 1
     text = raw.decode("utf-8")
-    delim = profile.delimiter if profile.delimiter != "auto" else sniff_delimiter(text)
+    delim = profile.delimiter
+    if delim == "auto":  # with a decimal comma, "," cannot be the field separator
+        delim = sniff_delimiter(text, (";", "\t") if profile.decimal == "," else _SNIFF_ORDER)
     names = tuple(f.strip() for f in next(csv.reader([text], delimiter=delim, strict=False), []))
     return Header(line=line, names=names, delimiter=delim, body_start=min(end + 1, len(buf)))
 
 
-def sniff_delimiter(header: str) -> str:
-    """The delimiter that occurs most often in the header line (outside quotes); "," on a tie or none."""
+def sniff_delimiter(header: str, candidates: tuple[str, ...] = _SNIFF_ORDER) -> str:
+    """The candidate occurring most often in the header line (outside quotes); the first on a tie or none."""
     outside = header.split('"')[0::2]
-    counts = {d: sum(part.count(d) for part in outside) for d in _SNIFF_ORDER}
-    best = max(_SNIFF_ORDER, key=lambda d: counts[d])
-    return best if counts[best] > 0 else ","
+    counts = {d: sum(part.count(d) for part in outside) for d in candidates}
+    return max(candidates, key=lambda d: counts[d])
 
 
 def _strict(data: bytes, enc: str, name: str, *, offset: int = 0, raw: bytes) -> str:

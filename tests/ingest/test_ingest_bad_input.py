@@ -45,7 +45,7 @@ def test_allowed_forms_are_named_in_the_reason() -> None:
     """Unit and number reasons say what is allowed."""
     _, unit = one_bad(b"lot,value,unit\nA,1,g\nA,2,lbs\n")
     assert "allowed: mg, g, kg, oz, mL, L, fl oz" in unit.reason
-    _, num = one_bad(b"lot,value\nA,1\nA,1.5\n", FeedProfile(decimal=",", max_bad_rows=5))
+    _, num = one_bad(b"lot;value\nA;1\nA;1.5\n", FeedProfile(decimal=",", max_bad_rows=5))
     assert "decimal comma" in num.reason
 
 

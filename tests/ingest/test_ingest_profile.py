@@ -117,3 +117,9 @@ def test_profile_for_matches_the_file_name_only_first_wins() -> None:
     assert profile_for("/drop/hall2_x/line1.csv", [a, b]) is b
     assert profile_for("/hall2_dir/export.txt", [a, b]) is DEFAULT_PROFILE
     assert profile_for("x.csv", [b, a]) is b
+
+
+def test_decimal_comma_with_comma_delimiter_is_refused() -> None:
+    """decimal = "," with delimiter = "," cannot be read unambiguously."""
+    with pytest.raises(ConfigError, match="another delimiter"):
+        FeedProfile.from_toml({"decimal": ",", "delimiter": ","}, source="c.toml", name="x")

@@ -220,3 +220,30 @@ def test_non_ascii_lot_codes_and_quoted_delimiters() -> None:
     exp = read_export_bytes('lot,product,value\n"0012,3",Gelée,1e2\n1E5,"a,b",-.5\n'.encode(), name="q.csv")
     assert exp.rows["lot"].tolist() == ["0012,3", "1E5"]
     assert values_of(exp) == [float("1e2"), float("-.5")]
+
+
+def test_decimal_comma_file_sniffs_semicolon() -> None:
+    """With a decimal comma and delimiter "auto", "," is never taken as the field separator."""
+    prof = FeedProfile(decimal=",")
+    exp = read_export_bytes(b"lot;value\nA;1,5\nA;2,25\n", name="d.csv", profile=prof)
+    assert values_of(exp) == [float("1.5"), float("2.25")]
+
+
+def test_timestamps_with_zone_offsets_and_inferred_formats() -> None:
+    """ISO 8601 with offsets is kept as written; a non-ISO column is read by pandas' inference."""
+    zoned = read_export_bytes(b"lot,value,timestamp\nA,1,2026-12-01T06:00:01+01:00\nA,2,2026-12-01T05:00:02Z\n",
+                              name="z.csv")
+    assert zoned.rows["timestamp"].tolist() == ["2026-12-01T06:00:01+01:00", "2026-12-01T05:00:02Z"]
+    us = read_export_bytes(b"lot,value,timestamp\nA,1,12/01/2026 06:00:01\nA,2,12/01/2026 06:00:02\n",
+                           name="us.csv")
+    assert us.rows["timestamp"].tolist() == ["2026-12-01T06:00:01", "2026-12-01T06:00:02"]
+
+
+@pytest.mark.parametrize("pad", [" ", "\t", "\x0b", "\x0c", "\u00a0", "\u2003"])
+def test_whitespace_around_fields_is_stripped(pad: str) -> None:
+    """ASCII and Unicode whitespace around any field is stripped, as Python's str.strip() does."""
+    raw = f"{pad}512.5{pad}"
+    data = f"lot;value;unit\n{pad}A7{pad};{raw};{pad}g\nA7;1;g\n".encode()
+    exp = read_export_bytes(data, name="w.csv")
+    assert exp.rows["lot"].tolist() == ["A7", "A7"] and exp.rows["unit"].tolist() == ["g", "g"]
+    assert values_of(exp)[0] == float(raw.strip())  # str.strip() + float(): the independent reference
