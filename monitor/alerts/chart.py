@@ -8,6 +8,7 @@ from typing import Sequence
 
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
 
 
 def _finite(x: object) -> float | None:
@@ -42,7 +43,9 @@ def render_chart(values: Sequence[float], *, target: float | None, mean: float |
     ax.set_ylabel(unit or "value")
     if title:
         ax.set_title(title[:80], fontsize=10)
-    ax.legend(fontsize=7, loc="best")
+    ax.xaxis.set_major_locator(MaxNLocator(6, integer=True))
+    ax.yaxis.set_major_locator(MaxNLocator(5))
+    ax.legend(fontsize=7, loc="upper right")   # a fixed place: "best" costs more than the rest of the chart
     ax.grid(True, linewidth=0.3)
     fig.subplots_adjust(left=0.11, right=0.98, top=0.9, bottom=0.16)
     buf = io.BytesIO()

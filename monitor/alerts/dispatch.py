@@ -10,6 +10,7 @@ repeats at most the one message in flight.
 from __future__ import annotations
 
 import contextlib
+import hashlib
 import logging
 import random
 import sqlite3
@@ -27,6 +28,7 @@ from monitor.alerts.email_dispatch import EmailDispatch
 from monitor.alerts.log_channel import LogChannel
 from monitor.alerts.settings import AlertSettings
 from monitor.alerts.templates import TemplateSet
+from monitor.errors import TemplateError
 
 log = logging.getLogger("monitor.alerts")
 
@@ -95,10 +97,16 @@ class Dispatcher:
         self._shipped_templates: TemplateSet | None = None
         self._templates: TemplateSet | None = None
         self._email: Any = None
+        self.template_error: TemplateError | None = None
         if settings.email is not None:
             self._shipped_templates = TemplateSet.load(None)
-            self._templates = (TemplateSet.load(settings.templates) if settings.templates is not None
-                               else self._shipped_templates)
+            self._templates = self._shipped_templates
+            if settings.templates is not None:
+                try:
+                    self._templates = TemplateSet.load(settings.templates)
+                except TemplateError as exc:   # deliver with the shipped set and tell people why
+                    self.template_error = exc
+                    self._report_template_error(exc)
         self._init_email()
 
     def _init_email(self) -> None:
@@ -157,6 +165,14 @@ class Dispatcher:
         new = TemplateSet.load(operator_dir) if operator_dir is not None else TemplateSet.load(None)
         with self._lock:
             self._templates = new
+
+    def _report_template_error(self, exc: TemplateError) -> None:
+        log.error("operator templates refused, shipped templates in use: %s", exc)
+        digest = hashlib.sha256(str(exc).encode("utf-8")).hexdigest()[:16]
+        self.enqueue(Alert(kind="config-rejected", dedup_key=f"config-rejected|templates|{digest}",
+                           created_at=iso_utc(self._clock()),
+                           data={"path": exc.path or "", "line": exc.line, "error": str(exc),
+                                 "in_force": "shipped templates"}))
 
     def templates(self) -> tuple[TemplateSet, TemplateSet]:
         """(the set in force, the shipped set used as fallback when an operator template fails to render)."""

@@ -144,6 +144,11 @@ class TemplateSet:
             raise TemplateError("template set is incomplete: missing " + ", ".join(missing), path=shipped_dir)
         return cls(sources, origins)
 
+    @staticmethod
+    def check(operator_dir: Path | None) -> None:
+        """Raise TemplateError if the set with ``operator_dir`` would not load (for config validation)."""
+        TemplateSet.load(operator_dir)
+
     def origin(self, name: str) -> Path | None:
         """The file a template name was read from."""
         return self._origins.get(name)

@@ -94,3 +94,30 @@ def test_render_failure_at_send_falls_back_to_shipped_templates(db_path, tmp_pat
     finally:
         d.close()
     assert srv.received[0].message["Subject"].startswith("[lotwarden] export rejected")
+
+
+def test_broken_templates_at_start_use_shipped_set_and_raise_config_rejected(db_path, tmp_path, put,
+                                                                             alert_factory, smtp_factory):
+    """A dispatcher started with a broken operator set still delivers (shipped set) and says why."""
+    import json
+
+    from monitor.alerts.settings import LogSettings
+
+    tdir = tmp_path / "tpl"
+    tdir.mkdir()
+    (tdir / "hold.subject.txt").write_text("{% for %}")
+    srv = smtp_factory()
+    em = EmailSettings(host="127.0.0.1", port=srv.port, security="none", sender="lotwarden@brackenfield.example",
+                       recipients=("qa@brackenfield.example",), timeout=10)
+    log_path = tmp_path / "alerts.jsonl"
+    d = Dispatcher(db_path, AlertSettings(log=LogSettings(path=log_path), email=em, templates=tdir,
+                                          group_window_seconds=0))
+    try:
+        assert d.template_error is not None and d.template_error.path == str(tdir / "hold.subject.txt")
+        put(alert_factory(lot="S1", created_at="2020-01-01T00:00:00+00:00"), ["log", "email"])
+        d.drain()
+    finally:
+        d.close()
+    kinds = [json.loads(x)["kind"] for x in log_path.read_text().splitlines()]
+    assert kinds == ["config-rejected", "hold"]
+    assert any("lot S1: HOLD" in r.message.get_body(("plain",)).get_content() for r in srv.received)
