@@ -180,10 +180,10 @@ def unjudged(lot: LotData, reason: str, *, rule_name: str = "", rule_version: st
     Descriptive numbers (n, mean, sd) are still filled in so a person can look.
     """
     if lot.values is not None:
-        v = lot.values[np.isfinite(lot.values)]
-        n = int(v.shape[0])
-        mean = float(np.mean(v)) if n else None
-        sd = float(np.std(v, ddof=1)) if n > 1 else None
+        from monitor.stats.moments import compute_moments
+
+        m = compute_moments(lot.values[np.isfinite(lot.values)])
+        n, mean, sd = m.n, (m.mean if m.n else None), (m.sd if m.n > 1 else None)
     else:
         assert lot.summary is not None
         n, mean, sd = lot.summary.n, lot.summary.mean, lot.summary.sd

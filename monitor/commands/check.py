@@ -13,14 +13,14 @@ import tomllib
 from pathlib import Path
 from typing import Any
 
+from monitor.engine import SCREENING_NOTE
 from monitor.errors import ConfigError, ExportError, LotwardenError
 from monitor.lot import Verdict
 from monitor.rulebook import ALTERNATIVES, NormalityRule, Rule, load_rules, match_rule
 
 DEFAULT_CONFIG = Path("config/lotwarden.toml")
 DEFAULT_RULES = Path("rules")
-CAUTION = ("lotwarden screens lots; net-quantity compliance is decided under local weights-and-measures law "
-           "by the competent authority.")
+CAUTION = SCREENING_NOTE
 
 
 def register(sub: argparse._SubParsersAction) -> argparse.ArgumentParser:
