@@ -31,6 +31,7 @@ IDLE_CHECK_SECONDS = 30.0
 SUPERVISE_SECONDS = 5.0
 RELOAD_CHECK_SECONDS = 2.0
 STOP_DRAIN_SECONDS = 2.0
+BATCH_FILES = 32                            # files handed to intake per commit when a backlog is finished
 PAUSE_ENV = "LOTWARDEN_PAUSE_AFTER_FILES"   # test hook: stop taking files after n (crash tests)
 
 EventFn = Callable[[str, dict[str, Any]], None]
@@ -293,7 +294,8 @@ class Daemon:
         suffixes = tuple(s for s in (getattr(p, "marker_suffix", None) for p in config.profiles) if s)
         self._names = NameFilter(include=tuple(w.include), ignore=tuple(w.ignore), marker_suffixes=suffixes)
         old = self._tracker.pending() if self._tracker else []
-        self._tracker = SettleTracker(w.settle_seconds, marker_for=self._marker_for)
+        # mtimes are this machine's own only with native watching (polling is for shares with other clocks)
+        self._tracker = SettleTracker(w.settle_seconds, marker_for=self._marker_for, trust_mtime=not w.polling)
         self._tracker.hint_many(p for p in old if self._names.accepts(p.name))
         if self._watcher is not None:
             self._watcher.stop()
@@ -376,11 +378,16 @@ class Daemon:
                 self._close_idle()
             self._run_calls()
             if not self._paused():
-                for path in self._tracker.look():
-                    self._process(path)
-                    if self._stop.is_set() or self._paused():
-                        break
+                finished = self._tracker.look()
+                while finished and not self._stop.is_set() and not self._paused():
+                    room = self._pause_after - self.files_done if self._pause_after else BATCH_FILES
+                    batch, finished = finished[:min(BATCH_FILES, room)], finished[min(BATCH_FILES, room):]
+                    self._process(batch)
+                for path in finished:          # not taken because of a stop: next start's scan finds them
+                    self._tracker.hint(path)
             pending = len(self._tracker)
+            if not pending:
+                self._flush_intake()
             settle = self._config.watch.settle_seconds
             timeout = min(0.25, max(0.05, settle / 5)) if pending and not self._paused() else 5.0
             self._wake.wait(timeout)
@@ -413,24 +420,43 @@ class Daemon:
     def _paused(self) -> bool:
         return bool(self._pause_after) and self.files_done >= self._pause_after
 
-    def _process(self, path: Path) -> None:
-        self._event("file-finished", {"path": str(path)})
+    def _process(self, paths: list[Path]) -> None:
+        """Hand finished files to intake, in arrival order: one commit for a backlog when intake offers it."""
+        for path in paths:
+            self._event("file-finished", {"path": str(path)})
+        batch = getattr(self._intake, "process_batch", None)
         try:
-            outcome = self._intake.process(path)
+            outcomes = list(batch(paths)) if batch is not None and len(paths) > 1 else \
+                [self._intake.process(p) for p in paths]
         except Exception:  # intake never raises for bad data; anything else is a bug we survive
-            log.exception("processing %s failed unexpectedly; it stays in the drop folder for a retry", path)
+            log.exception("processing %s failed unexpectedly; left in the drop folder for a retry",
+                          ", ".join(p.name for p in paths))
+            for p in paths:
+                self._tracker.hint(p)  # retried after the settle time; intake's dedup keeps it exactly once
             return
-        self.files_done += 1
-        describe = getattr(outcome, "describe", None)
-        text = describe() if callable(describe) else repr(outcome)
-        status = getattr(outcome, "status", "")
-        (log.warning if status in ("rejected", "duplicate", "unreadable", "vanished") else log.info)("%s", text)
-        if getattr(outcome, "alerts", True):   # new alerts: deliver now rather than at the next drain tick
+        self.files_done += len(outcomes)
+        kick = False
+        for path, outcome in zip(paths, outcomes):
+            describe = getattr(outcome, "describe", None)
+            text = describe() if callable(describe) else repr(outcome)
+            status = getattr(outcome, "status", "")
+            (log.warning if status in ("rejected", "duplicate", "unreadable", "vanished") else log.info)("%s", text)
+            kick = kick or bool(getattr(outcome, "alerts", True))
+            self._move_marker(path, outcome)
+            self._event("file-processed", {"path": str(path), "outcome": outcome})
+        if kick:   # new alerts: deliver now rather than at the next drain tick
             self._kick_drain()
-        self._move_marker(path, outcome)
-        self._event("file-processed", {"path": str(path), "outcome": outcome})
         if self._paused():
             log.warning("%s=%d reached: taking no more files", PAUSE_ENV, self._pause_after)
+
+    def _flush_intake(self) -> None:
+        flush = getattr(self._intake, "flush", None)
+        if flush is None:
+            return
+        try:
+            flush()
+        except Exception:
+            log.exception("recording archive moves failed; recover() finds them at the next start")
 
     def _move_marker(self, path: Path, outcome: Any) -> None:
         """Move the profile's marker file next to where its export went (nothing is deleted)."""
@@ -557,6 +583,8 @@ class Daemon:
     def _shutdown(self) -> None:
         log.info("stopping: %d files processed", self.files_done)
         self._run_calls()
+        if self._intake is not None:
+            self._flush_intake()
         if self._watcher is not None:
             self._watcher.stop()
         sched, self._scheduler = self._scheduler, None

@@ -98,14 +98,20 @@ class SettleTracker:
     A candidate is finished when its (size, mtime, inode) is unchanged across at least two looks that
     span ``settle_seconds``; one stable look is enough after a rename into the folder (``moved=True``);
     when ``marker_for(path)`` names a suffix, the marker file's existence is the only signal.
+    With ``trust_mtime`` (a local disk, whose mtimes come from this machine's clock) the file's own mtime
+    counts as the start of the unchanged span, so a file whose event arrived late (watchdog's inotify
+    buffer holds events 0.5 s) is not made to wait a full settle time again; two looks are still needed.
     Thread-safe: hints come from the observer thread, looks from the main loop.
     """
 
     def __init__(self, settle_seconds: float, *, stat: StatFn = os.stat, clock: ClockFn = time.monotonic,
-                 marker_for: Callable[[Path], str | None] | None = None) -> None:
+                 marker_for: Callable[[Path], str | None] | None = None, trust_mtime: bool = False,
+                 wall_clock: ClockFn = time.time) -> None:
         self.settle_seconds = float(settle_seconds)
+        self.trust_mtime = trust_mtime
         self._stat = stat
         self._clock = clock
+        self._wall = wall_clock
         self._marker_for = marker_for or (lambda p: None)
         self._candidates: dict[Path, _Candidate] = {}
         self._lock = threading.Lock()
@@ -170,6 +176,10 @@ class SettleTracker:
         if sig != cand.signature:
             first = cand.signature is None
             cand.signature, cand.stable_since, cand.looks = sig, now, 1
+            if self.trust_mtime:
+                age = self._wall() - st.st_mtime_ns / 1e9
+                if age > 0:   # never for an mtime in the future (clock trouble): then the looks decide
+                    cand.stable_since = now - min(age, self.settle_seconds)
             if first and cand.moved:
                 return "finished"
             if not first:

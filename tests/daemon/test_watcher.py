@@ -176,6 +176,36 @@ class TestSettleTracker:
         fs.files["/d/a.csv.ok"] = (0, 1, 9)
         assert t.look() == [Path("/d/a.csv")]
 
+    def test_trusted_mtime_counts_as_the_start_of_the_unchanged_span(self):
+        """On a local disk an old mtime shortens the wait, but a second look is still needed."""
+        fs = FakeFS()
+        wall = {"t": 1000.0}
+        t = SettleTracker(2.0, stat=fs.stat, clock=fs.clock, trust_mtime=True, wall_clock=lambda: wall["t"])
+        fs.files["/d/a.csv"] = (100, int(997.0 * 1e9), 7)      # last written 3 s ago (wall clock)
+        t.hint(Path("/d/a.csv"))
+        assert t.look() == []                                   # one look is never enough
+        fs.now, wall["t"] = 0.1, 1000.1
+        assert t.look() == [Path("/d/a.csv")]
+
+    def test_fresh_or_future_mtime_gets_no_credit(self):
+        """A just-written file, or one with an mtime in the future, waits the full settle time."""
+        for mtime in (999.5, 1005.0):
+            fs = FakeFS()
+            wall = {"t": 1000.0}
+            t = SettleTracker(2.0, stat=fs.stat, clock=fs.clock, trust_mtime=True, wall_clock=lambda: wall["t"])
+            fs.files["/d/a.csv"] = (100, int(mtime * 1e9), 7)
+            t.hint(Path("/d/a.csv"))
+            t.look()
+            fs.now, wall["t"] = 1.0, 1001.0
+            if mtime < 1000.0:
+                assert t.look() == []                           # 1.5 s unchanged so far: not yet
+                fs.now, wall["t"] = 1.6, 1001.6
+                assert t.look() == [Path("/d/a.csv")]           # 2.1 s since the mtime
+            else:
+                assert t.look() == []
+                fs.now = 2.0
+                assert t.look() == [Path("/d/a.csv")]           # two looks 2 s apart, as without trust
+
     def test_hint_again_keeps_one_candidate(self):
         """Repeated hints for one path make one candidate and one finished result."""
         fs, t = self.make(settle=0.0)
