@@ -86,6 +86,7 @@ class Dispatcher:
         self._clock = clock
         self._rng = random.Random(seed)
         self._lock = threading.RLock()
+        self._closed = False
         self._conn = open_db(self.db_path)
         with write_tx(self._conn):
             outbox.ensure_sender_schema(self._conn)
@@ -121,6 +122,8 @@ class Dispatcher:
         Never raises for delivery problems; database trouble is logged and retried on the next drain.
         """
         with self._lock:
+            if self._closed:
+                return 0
             t = self._clock() if now is None else now
             done = 0
             for name in self.settings.channels:
@@ -187,7 +190,9 @@ class Dispatcher:
     def close(self) -> None:
         """Close the database connection (the daemon drains with ``flush=True`` first if it wants to)."""
         with self._lock:
-            self._conn.close()
+            if not self._closed:
+                self._closed = True
+                self._conn.close()
 
     # --- shared by the channel drivers ---------------------------------------------------------------
     @property
@@ -218,7 +223,7 @@ class Dispatcher:
             others = tuple(c for c in self.settings.channels if c != channel)
             if alert.kind != "delivery-failing" and others:
                 outbox.enqueue(self._conn, failing_alert(channel, alert, error, now), others)
-        log.error("alert %s dead on %s: %s", alert.dedup_key, channel, error)
+        log.error("alert %r dead on %s: %s", alert.dedup_key, channel, error)
 
     def _drain_payload(self, name: str, channel: PayloadChannel, now: float) -> int:
         rows = outbox.due_rows(self._conn, name)
@@ -233,7 +238,7 @@ class Dispatcher:
                 delay = backoff_seconds(attempts, retry_first, retry_cap, self._rng)
                 with write_tx(self._conn):
                     outbox.mark_retry(self._conn, alert_id, name, now + delay, str(exc))
-                log.warning("alert %s on %s: %s; retry in %.1f s", alert.dedup_key, name, exc, delay)
+                log.warning("alert %r on %s: %s; retry in %.1f s", alert.dedup_key, name, exc, delay)
                 break
             except GiveUp as exc:
                 self.give_up(alert_id, alert, name, str(exc), now)

@@ -81,8 +81,14 @@ class EmailDispatch:
 
     def _send(self, session: SmtpSession, batch: Batch, now: float) -> int | None:
         templates, shipped = self.d.templates()
-        msg = build_message(list(batch.alerts), sender=self.email.sender, recipients=batch.recipients, now=now,
-                            folded=batch.folded, templates=templates, shipped=shipped)
+        try:
+            msg = build_message(list(batch.alerts), sender=self.email.sender, recipients=batch.recipients,
+                                now=now, folded=batch.folded, templates=templates, shipped=shipped)
+        except Exception as exc:      # never let one unbuildable alert block the channel: dead + reported
+            log.exception("e-mail for %d alert(s) could not be built", len(batch.rows))
+            for r in batch.rows:
+                self.d.give_up(r.alert_id, r.alert, "email", f"message could not be built: {exc!r}"[:300], now)
+            return 0
         try:
             refused = session.send(msg, batch.recipients)
         except RetryLater as exc:

@@ -9,6 +9,7 @@ variable, ``password_file`` a file; the secret is read only when a connection is
 from __future__ import annotations
 
 import fnmatch
+import logging
 import os
 import re
 from dataclasses import dataclass
@@ -132,6 +133,9 @@ class EmailSettings:
             return value
         if self.password_file is not None:
             try:
+                if self.password_file.stat().st_mode & 0o077:
+                    logging.getLogger("monitor.alerts").warning(
+                        "%s: password file is readable by group or others; chmod 600 it", self.password_file)
                 text = self.password_file.read_text(encoding="utf-8")
             except OSError as exc:
                 raise ConfigError(f"cannot read password file: {exc.strerror or type(exc).__name__}",
