@@ -16,6 +16,7 @@ OK, NOT_NUMBER, NOT_FINITE = 0, 1, 2
 _NUMBER = r"^[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?$"
 _NON_FINITE = r"(?i)^[+-]?(inf|infinity|nan)$"
 _ISO_SPACE = r"^([0-9]{4}-[0-9]{2}-[0-9]{2}) "
+_ISO_DATE = r"^[0-9]{4}(-[0-9]{2}-[0-9]{2}|[0-9]{4})([T ]|$)"
 
 
 def trim(arr: pa.Array) -> pa.Array:
@@ -85,8 +86,10 @@ def parse_timestamps(text: pa.Array, fmt: str | None) -> tuple[pa.Array, np.ndar
         return pa.repeat("", n), np.zeros(n, dtype=bool)
     if fmt is not None:
         return _formatted(pd.to_datetime(_series(text), format=fmt, errors="coerce"), empty)
-    try:  # fast path: every non-empty cell is ISO 8601 without a zone
+    try:  # fast path: every non-empty cell is ISO 8601 without a zone (Arrow also takes "/": refuse that)
         filled = text if not empty.any() else pc.if_else(pa.array(empty), pa.scalar("2000-01-01"), text)
+        if not pc.all(pc.match_substring_regex(filled, _ISO_DATE)).as_py():
+            raise pa.ArrowInvalid("not ISO 8601")
         pc.cast(filled, pa.timestamp("us"))
         spaced = pc.any(pc.match_substring(text, " ")).as_py()
         return (pc.replace_substring(text, " ", "T", max_replacements=1) if spaced else text), np.zeros(n, bool)
@@ -94,14 +97,40 @@ def parse_timestamps(text: pa.Array, fmt: str | None) -> tuple[pa.Array, np.ndar
         pass
     iso = pc.replace_substring_regex(text, _ISO_SPACE, r"\1T")
     parsed = pd.to_datetime(_series(iso), format="ISO8601", errors="coerce", utc=True)
-    bad = parsed.isna().to_numpy() & ~empty
+    shaped = pc.match_substring_regex(iso, _ISO_DATE).to_numpy(zero_copy_only=False)
+    bad = (parsed.isna().to_numpy() | ~shaped) & ~empty
     if bad.sum() == (~empty).sum():
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            inferred = pd.to_datetime(_series(text), errors="coerce")
-        if inferred.notna().any():
+        inferred = _inferred(_series(text))
+        if inferred is not None:
             return _formatted(inferred, empty)
     return pc.if_else(pa.array(bad | empty), pa.scalar(""), iso), bad
+
+
+def _inferred(cells: pd.Series) -> pd.Series | None:
+    """pandas' format inference, refusing to guess the day/month order.
+
+    "01.12.2026" is 1 December or 12 January. If some cells can only be read one way ("13.12.2026"), the
+    column is read that way; otherwise cells whose day-first and month-first readings differ become NaT.
+    None when nothing could be read.
+    """
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            month_first = pd.to_datetime(cells, errors="coerce", dayfirst=False)
+            day_first = pd.to_datetime(cells, errors="coerce", dayfirst=True)
+        except (ValueError, TypeError, OverflowError):
+            return None
+    if getattr(month_first.dt, "tz", None) is not None or getattr(day_first.dt, "tz", None) is not None:
+        return None
+    m_ok, d_ok = month_first.notna().to_numpy(), day_first.notna().to_numpy()
+    if d_ok.sum() > m_ok.sum() and not (m_ok & ~d_ok).any():
+        return day_first     # some cells read only day-first ("13.12.2026"): the column is day-first
+    if m_ok.sum() > d_ok.sum() and not (d_ok & ~m_ok).any():
+        return month_first
+    agree = (month_first == day_first).to_numpy()
+    if not agree.any():
+        return None
+    return month_first.where(agree)
 
 
 def _series(text: pa.Array) -> pd.Series:

@@ -221,9 +221,12 @@ class _Rows:
         if t is None:
             return pa.repeat("", self.n)
         stamps, bad = convert.parse_timestamps(t, self.prof.timestamp_format)
-        allowed = repr(self.prof.timestamp_format) if self.prof.timestamp_format else "ISO 8601"
-        self.flag(bad, "timestamp", f"timestamp '{{v}}' does not match {allowed} — set timestamp_format "
-                                    "in the feed profile")
+        if self.prof.timestamp_format:
+            self.flag(bad, "timestamp", f"timestamp '{{v}}' does not match {self.prof.timestamp_format!r} — "
+                                        "fix the row or timestamp_format in the feed profile")
+        else:
+            self.flag(bad, "timestamp", "timestamp '{v}' is not ISO 8601 and cannot be read unambiguously — "
+                                        "set timestamp_format in the feed profile")
         return stamps
 
     # -- results ----------------------------------------------------------------------------------

@@ -30,7 +30,7 @@ def one_bad(data: bytes, profile: FeedProfile = LENIENT):
     (b"lot,value\nA,1\n  ,2\n", 3, "lot", "  ", "empty lot code"),
     (b"lot,value,unit\nA,1,g\nA,2,lbs\n", 3, "unit", "lbs", "unknown unit 'lbs'"),
     (b"lot,value,timestamp\nA,1,2026-12-01T06:00:00\nA,2,yesterday\n", 3, "timestamp", "yesterday",
-     "does not match ISO 8601"),
+     "is not ISO 8601"),
 ])
 def test_bad_rows_name_line_column_raw_value_and_reason(data: bytes, line: int, column: str, value: str,
                                                         fragment: str) -> None:

@@ -234,9 +234,33 @@ def test_timestamps_with_zone_offsets_and_inferred_formats() -> None:
     zoned = read_export_bytes(b"lot,value,timestamp\nA,1,2026-12-01T06:00:01+01:00\nA,2,2026-12-01T05:00:02Z\n",
                               name="z.csv")
     assert zoned.rows["timestamp"].tolist() == ["2026-12-01T06:00:01+01:00", "2026-12-01T05:00:02Z"]
-    us = read_export_bytes(b"lot,value,timestamp\nA,1,12/01/2026 06:00:01\nA,2,12/01/2026 06:00:02\n",
-                           name="us.csv")
-    assert us.rows["timestamp"].tolist() == ["2026-12-01T06:00:01", "2026-12-01T06:00:02"]
+    named = read_export_bytes(b"lot,value,timestamp\nA,1,Dec 1 2026 06:00:01\nA,2,Dec 13 2026 06:00:02\n",
+                              name="n.csv")
+    assert named.rows["timestamp"].tolist() == ["2026-12-01T06:00:01", "2026-12-13T06:00:02"]
+
+
+def test_ambiguous_day_month_order_is_refused_not_guessed() -> None:
+    """"01.12.2026" may be 1 December or 12 January: without timestamp_format it is a bad row, never a guess."""
+    data = b"lot,value,timestamp\nA,1,01.12.2026 06:00:01\nA,2,02.12.2026 06:00:02\nA,3,\n"
+    exp = read_export_bytes(data, name="a.csv", profile=FeedProfile(max_bad_rows=5))
+    assert [(b.line, b.column) for b in exp.bad_rows] == [(2, "timestamp"), (3, "timestamp")]
+    assert "timestamp_format" in exp.bad_rows[0].reason and exp.rows["source_line"].tolist() == [4]
+    fixed = read_export_bytes(data, name="a.csv", profile=FeedProfile(timestamp_format="%d.%m.%Y %H:%M:%S"))
+    assert fixed.rows["timestamp"].tolist() == ["2026-12-01T06:00:01", "2026-12-02T06:00:02", ""]
+
+
+def test_day_first_column_is_recognised_from_an_unambiguous_cell() -> None:
+    """A cell that reads only day-first ("13.12.2026") settles the order for the whole column."""
+    data = b"lot,value,timestamp\nA,1,01.12.2026 06:00:01\nA,2,13.12.2026 06:00:02\n"
+    exp = read_export_bytes(data, name="d.csv")
+    assert exp.rows["timestamp"].tolist() == ["2026-12-01T06:00:01", "2026-12-13T06:00:02"]
+
+
+def test_slash_dates_are_not_passed_off_as_iso() -> None:
+    """A date with "/" is never returned as if it were ISO 8601 text."""
+    exp = read_export_bytes(b"lot,value,timestamp\nA,1,2026/12/01 06:00\nA,2,2026-12-01 06:00\n", name="s.csv",
+                            profile=FeedProfile(max_bad_rows=5))
+    assert all("/" not in t for t in exp.rows["timestamp"].tolist())
 
 
 @pytest.mark.parametrize("pad", [" ", "\t", "\x0b", "\x0c", "\u00a0", "\u2003"])
