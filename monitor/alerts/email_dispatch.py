@@ -12,7 +12,6 @@ from monitor.alerts.compose import build_message
 from monitor.alerts.delivery import GiveUp, RetryLater, backoff_seconds
 from monitor.alerts.email_channel import EmailChannel, SmtpSession
 from monitor.alerts.grouping import HOUR, Batch, Pacing, PendingRow, plan_batches
-from monitor.alerts.templates import TemplateSet
 
 if TYPE_CHECKING:
     from monitor.alerts.dispatch import Dispatcher

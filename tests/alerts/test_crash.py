@@ -9,14 +9,12 @@ import subprocess
 import sys
 import threading
 import time
-from pathlib import Path
 
 from monitor.alerts.dispatch import Dispatcher
 from monitor.alerts.settings import AlertSettings, EmailSettings
 
 SENDER_SCRIPT = """
 import sys, time
-from pathlib import Path
 from monitor.alerts.dispatch import Dispatcher
 from monitor.alerts.settings import AlertSettings, EmailSettings
 em = EmailSettings(host="127.0.0.1", port=int(sys.argv[2]), security="none",

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 import sqlite3
-from datetime import datetime, timezone
+from datetime import datetime
 
 from monitor.alerts.dispatch import Dispatcher
 from monitor.alerts.settings import AlertSettings, DigestSettings, LogSettings
