@@ -51,32 +51,35 @@ class OneLineFormatter(logging.Formatter):
         return text.replace("\r", "").replace("\n", " | ")
 
 
-def configure_logging(stream: TextIO | None = None, level: int = logging.INFO) -> logging.Handler:
-    """Send the project's log records (and the scheduler's warnings) to ``stream``, one line each."""
-    handler = logging.StreamHandler(stream or sys.stderr)
-    handler.setFormatter(OneLineFormatter())
-    for name in ("lotwarden", "monitor"):
-        lg = logging.getLogger(name)
-        lg.setLevel(level)
-        lg.addHandler(handler)
-        lg.propagate = False
-    for name in ("apscheduler", "watchdog"):
-        lg = logging.getLogger(name)
-        lg.setLevel(logging.WARNING)
-        lg.addHandler(handler)
-        lg.propagate = False
-    handler.addFilter(_drop_shutdown_race)
-    return handler
+_LOGGERS = {"lotwarden": logging.INFO, "monitor": logging.INFO, "apscheduler": logging.WARNING,
+            "watchdog": logging.WARNING}
+
+
+class LogSetup:
+    """The daemon's log handler on the project's (and its libraries') loggers; ``undo()`` restores them."""
+
+    def __init__(self, stream: TextIO | None = None) -> None:
+        self.handler = logging.StreamHandler(stream or sys.stderr)
+        self.handler.setFormatter(OneLineFormatter())
+        self.handler.addFilter(_drop_shutdown_race)
+        self._levels: dict[str, int] = {}
+        for name, level in _LOGGERS.items():
+            lg = logging.getLogger(name)
+            self._levels[name] = lg.level
+            lg.setLevel(level)
+            lg.addHandler(self.handler)   # records still propagate: an embedding program's handlers see them
+
+    def undo(self) -> None:
+        for name, level in self._levels.items():
+            lg = logging.getLogger(name)
+            lg.removeHandler(self.handler)
+            lg.setLevel(level)
+        self.handler.flush()
 
 
 def _drop_shutdown_race(record: logging.LogRecord) -> bool:
     """watchdog 7's inotify emitter logs this error when it is stopped while reading; it is harmless."""
     return not (record.name.startswith("watchdog") and "called when the thread is inactive" in record.getMessage())
-
-
-def remove_logging(handler: logging.Handler) -> None:
-    for name in ("lotwarden", "monitor", "apscheduler", "watchdog"):
-        logging.getLogger(name).removeHandler(handler)
 
 
 def utc_now_iso() -> str:
@@ -196,14 +199,14 @@ class Daemon:
 
     # ------------------------------------------------------------------ run
     def run(self) -> int:
-        handler = configure_logging(self.log_stream) if self.configure_log else None
+        logs = LogSetup(self.log_stream) if self.configure_log else None
         old_signals = self._install_signals()
         try:
             return self._run()
         finally:
             self._restore_signals(old_signals)
-            if handler is not None:
-                remove_logging(handler)
+            if logs is not None:
+                logs.undo()
             self.stopped.set()
 
     def _run(self) -> int:
@@ -354,7 +357,11 @@ class Daemon:
         w = self._watcher
         if w is not None and not self._stop.is_set() and not w.is_alive():
             log.error("folder observer on %s died; restarting it and rescanning", w.folder)
-            w.restart()
+            try:
+                w.restart()
+            except OSError as exc:   # e.g. the share is gone: keep trying at every supervision tick
+                log.error("cannot watch %s: %s; retrying in %gs", w.folder, exc, self.supervise_seconds)
+                return
             self._rescan()
 
     def _rescan(self) -> None:

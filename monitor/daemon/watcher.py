@@ -8,6 +8,7 @@ so the archive and quarantine folders may live inside it.
 
 from __future__ import annotations
 
+import errno
 import fnmatch
 import logging
 import os
@@ -27,6 +28,8 @@ log = logging.getLogger("lotwarden.watcher")
 TEMP_PATTERNS: tuple[str, ...] = ("*.tmp", "*.temp", "*.part", "*.partial", "*.crdownload", "*.swp",
                                   "*~", "~*", "*.lock", "*.filepart")
 REASON_SUFFIX = ".reason.txt"
+# inotify refuses a new watch with these when its per-user limits are reached (inotify(7)): poll instead
+WATCH_LIMIT_ERRNOS = (errno.ENOSPC, errno.EMFILE, errno.ENFILE)
 
 StatFn = Callable[[str], os.stat_result]
 ClockFn = Callable[[], float]
@@ -238,17 +241,27 @@ class FolderWatcher:
             if self._observer is not None:
                 return
             try:
-                obs = self._make(self.polling)
-                obs.start()
+                obs = self._start_one(self.polling)
             except OSError as exc:
-                if self.polling:
+                if self.polling or exc.errno not in WATCH_LIMIT_ERRNOS:
                     raise
                 log.error("native watch on %s failed (%s); falling back to polling every %gs",
                           self.folder, exc, self.poll_interval)
                 self.polling = True
-                obs = self._make(True)
-                obs.start()
+                obs = self._start_one(True)
             self._observer = obs
+
+    def _start_one(self, polling: bool) -> Observer | PollingObserver:
+        obs = self._make(polling)
+        try:
+            obs.start()
+        except BaseException:
+            obs.stop()          # a half-started observer leaves its reader thread behind otherwise
+            for e in list(obs.emitters):
+                e.stop()
+                e.join(2)
+            raise
+        return obs
 
     def stop(self, timeout: float = 5.0) -> None:
         """Stop the observer and wait for its thread (up to ``timeout`` seconds)."""
@@ -263,8 +276,14 @@ class FolderWatcher:
             log.exception("stopping the observer failed")
 
     def is_alive(self) -> bool:
+        """True while the observer thread *and* its emitter run (the inotify emitter stops by itself when
+        the watched folder is removed, leaving a live observer that sees nothing)."""
         with self._lock:
-            return self._observer is not None and self._observer.is_alive()
+            obs = self._observer
+        if obs is None or not obs.is_alive():
+            return False
+        emitters = list(obs.emitters)
+        return bool(emitters) and all(e.is_alive() for e in emitters)
 
     def restart(self) -> None:
         """Replace the observer with a fresh one (after it died)."""

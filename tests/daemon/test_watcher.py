@@ -286,6 +286,27 @@ def test_dead_observer_is_detected_and_restarted(tmp_path):
         w.stop()
 
 
+def test_removed_folder_counts_as_dead_and_restart_recovers(tmp_path):
+    """If the watched folder is removed, the emitter stops: is_alive() says so; restart() works once it is back."""
+    folder = tmp_path / "drop"
+    folder.mkdir()
+    seen, on_hint = collect_hints()
+    w = FolderWatcher(folder, polling=False, poll_interval=0.1, on_hint=on_hint)
+    w.start()
+    try:
+        folder.rmdir()
+        assert wait_for(lambda: not w.is_alive())
+        with pytest.raises(OSError):
+            w.restart()                      # still missing: the caller logs and retries later
+        folder.mkdir()
+        w.restart()
+        assert w.is_alive()
+        (folder / "back.csv").write_text("x")
+        assert wait_for(lambda: folder / "back.csv" in {p for p, _ in seen})
+    finally:
+        w.stop()
+
+
 @pytest.mark.parametrize("polling", [False, True], ids=["native", "polling"])
 def test_slowly_written_file_is_taken_once_when_finished(tmp_path, polling):
     """A file written in chunks over longer than settle_seconds is taken once, after its last byte."""
