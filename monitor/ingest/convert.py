@@ -19,12 +19,28 @@ _ISO_SPACE = r"^([0-9]{4}-[0-9]{2}-[0-9]{2}) "
 _ISO_DATE = r"^[0-9]{4}(-[0-9]{2}-[0-9]{2}|[0-9]{4})([T ]|$)"
 
 
-def trim(arr: pa.Array) -> pa.Array:
+def trim(arr: pa.ChunkedArray) -> pa.ChunkedArray:
     """Strip leading and trailing whitespace from every string."""
     return pc.utf8_trim_whitespace(arr)
 
 
-def parse_numbers(text: pa.Array, decimal: str) -> tuple[np.ndarray, np.ndarray]:
+def may_need_trim(text: pa.ChunkedArray) -> bool:
+    """False when no cell can start or end with whitespace: all bytes are printable ASCII above space.
+
+    Looks at the raw value bytes of each chunk (min/max reductions, no copies); every ASCII whitespace
+    byte is below 0x21 and Unicode whitespace needs bytes >= 0x80.
+    """
+    for chunk in text.chunks:
+        data = chunk.buffers()[2]
+        if data is None or data.size == 0:
+            continue
+        b = np.frombuffer(data, dtype=np.uint8)
+        if b.min() < 0x21 or b.max() > 0x7E:
+            return True
+    return False
+
+
+def parse_numbers(text: pa.ChunkedArray, decimal: str) -> tuple[np.ndarray, np.ndarray]:
     """Float64 values and a status per row (OK, NOT_NUMBER, NOT_FINITE) of trimmed number strings.
 
     With ``decimal=","`` the comma is the decimal mark and a "." makes the field not a number.
@@ -56,7 +72,7 @@ def parse_numbers(text: pa.Array, decimal: str) -> tuple[np.ndarray, np.ndarray]
     return values, status
 
 
-def parse_units(text: pa.Array, default: str) -> tuple[pa.Array, np.ndarray]:
+def parse_units(text: pa.ChunkedArray, default: str) -> tuple[pa.ChunkedArray, np.ndarray]:
     """Canonical unit per row (a blank cell means ``default``) and a mask of unknown units.
 
     ``text`` may be untrimmed: each distinct spelling is stripped once.
@@ -74,7 +90,7 @@ def parse_units(text: pa.Array, default: str) -> tuple[pa.Array, np.ndarray]:
     return units, ~good
 
 
-def parse_timestamps(text: pa.Array, fmt: str | None) -> tuple[pa.Array, np.ndarray]:
+def parse_timestamps(text: pa.ChunkedArray, fmt: str | None) -> tuple[pa.ChunkedArray, np.ndarray]:
     """ISO 8601 text per row ("" for an empty cell) and a mask of cells that are not timestamps.
 
     Without ``fmt``: ISO 8601 (the text is kept, a space between date and time becomes "T"); when no
@@ -86,13 +102,10 @@ def parse_timestamps(text: pa.Array, fmt: str | None) -> tuple[pa.Array, np.ndar
         return pa.repeat("", n), np.zeros(n, dtype=bool)
     if fmt is not None:
         return _formatted(pd.to_datetime(_series(text), format=fmt, errors="coerce"), empty)
-    try:  # fast path: every non-empty cell is ISO 8601 without a zone (Arrow also takes "/": refuse that)
+    try:  # fast path: Arrow's cast takes only ISO 8601 without a zone ("YYYY-MM-DD[ T]hh:mm:ss[.f]")
         filled = text if not empty.any() else pc.if_else(pa.array(empty), pa.scalar("2000-01-01"), text)
-        if not pc.all(pc.match_substring_regex(filled, _ISO_DATE)).as_py():
-            raise pa.ArrowInvalid("not ISO 8601")
         pc.cast(filled, pa.timestamp("us"))
-        spaced = pc.any(pc.match_substring(text, " ")).as_py()
-        return (pc.replace_substring(text, " ", "T", max_replacements=1) if spaced else text), np.zeros(n, bool)
+        return pc.replace_substring(text, " ", "T", max_replacements=1), np.zeros(n, dtype=bool)
     except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
         pass
     iso = pc.replace_substring_regex(text, _ISO_SPACE, r"\1T")
@@ -133,11 +146,11 @@ def _inferred(cells: pd.Series) -> pd.Series | None:
     return month_first.where(agree)
 
 
-def _series(text: pa.Array) -> pd.Series:
+def _series(text: pa.ChunkedArray) -> pd.Series:
     return pd.Series(text.to_pylist(), dtype=object)
 
 
-def _formatted(parsed: pd.Series, empty: np.ndarray) -> tuple[pa.Array, np.ndarray]:
+def _formatted(parsed: pd.Series, empty: np.ndarray) -> tuple[pa.ChunkedArray, np.ndarray]:
     """ISO 8601 strings of parsed timestamps (UTC with "Z" when they carry a zone)."""
     bad = parsed.isna().to_numpy() & ~empty
     zoned = getattr(parsed.dt, "tz", None) is not None

@@ -114,15 +114,15 @@ class _Rows:
         self.raw, self.header, self.index, self.kind, self.prof, self.name = raw, header, index, kind, prof, name
         self.n = raw.size
         self.code = np.zeros(self.n, dtype=np.int16)      # 0 = good; else 1 + index into self.reasons
-        self.reasons: list[tuple[str, str, pa.Array]] = []  # (canonical column, reason template, raw text)
-        self.trimmed: dict[str, pa.Array] = {}
+        self.reasons: list[tuple[str, str, pa.ChunkedArray]] = []  # (canonical column, reason template, raw text)
+        self.trimmed: dict[str, pa.ChunkedArray] = {}
 
-    def text(self, canon: str) -> pa.Array | None:
+    def text(self, canon: str) -> pa.ChunkedArray | None:
         if canon not in self.index:
             return None
         if canon not in self.trimmed:
             col = self.raw.columns[self.index[canon]]
-            self.trimmed[canon] = convert.trim(col) if self.raw.spaced else col
+            self.trimmed[canon] = convert.trim(col) if convert.may_need_trim(col) else col
         return self.trimmed[canon]
 
     def flag(self, mask: np.ndarray, canon: str, reason: str) -> None:
@@ -168,7 +168,7 @@ class _Rows:
                       bad_rows=self._bad_rows(), dropped=int(dropped.sum()), end_of_lot=self._markers(marker),
                       density=prof.density, profile=prof.name)
 
-    def _blank(self, lot: pa.Array) -> np.ndarray:
+    def _blank(self, lot: pa.ChunkedArray) -> np.ndarray:
         """Rows whose every field is empty or whitespace (empty lines, lines of delimiters only)."""
         blank = np.zeros(self.n, dtype=bool)
         cand = np.flatnonzero(pc.equal(pc.binary_length(lot), 0).to_numpy(zero_copy_only=False))
@@ -194,7 +194,7 @@ class _Rows:
         self.flag(status == convert.NOT_FINITE, canon, f"{canon} '{{v}}' is not finite — must be a finite number")
         return values
 
-    def _units(self) -> pa.Array:
+    def _units(self) -> pa.ChunkedArray:
         if "unit" not in self.index:
             return pa.repeat(self.prof.unit, self.n)
         # parse_units strips each distinct spelling itself: no need to trim a million cells first
@@ -202,7 +202,7 @@ class _Rows:
         self.flag(unknown, "unit", f"unknown unit '{{v}}' — allowed: {ALLOWED_UNITS}")
         return units
 
-    def _subtract_tare(self, values: np.ndarray, units: pa.Array) -> np.ndarray:
+    def _subtract_tare(self, values: np.ndarray, units: pa.ChunkedArray) -> np.ndarray:
         if self.prof.tare == 0.0:
             return values
         out = values.copy()
@@ -216,7 +216,7 @@ class _Rows:
                                         "to be subtracted")
         return out
 
-    def _timestamps(self) -> pa.Array:
+    def _timestamps(self) -> pa.ChunkedArray:
         t = self.text("timestamp")
         if t is None:
             return pa.repeat("", self.n)
@@ -278,12 +278,12 @@ class _Rows:
             out.append((int(self.raw.lines[i]), lots[int(carriers[k])].as_py() if k >= 0 else ""))
         return tuple(out)
 
-    def _frame(self, good: np.ndarray, values: np.ndarray, units: pa.Array, stamps: pa.Array,
+    def _frame(self, good: np.ndarray, values: np.ndarray, units: pa.ChunkedArray, stamps: pa.ChunkedArray,
                extra: dict[str, np.ndarray]) -> pd.DataFrame:
         mask = pa.array(good)
         every = bool(good.all())
 
-        def text(arr: pa.Array) -> pd.Series:
+        def text(arr: pa.ChunkedArray) -> pd.Series:
             return pd.Series(arr if every else arr.filter(mask), dtype="str")
 
         cols: dict[str, pd.Series | np.ndarray] = {"source_line": self.raw.lines[good].astype(np.int64),
