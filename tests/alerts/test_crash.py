@@ -15,6 +15,7 @@ from monitor.alerts.settings import AlertSettings, EmailSettings
 
 SENDER_SCRIPT = """
 import sys, time
+from pathlib import Path
 from monitor.alerts.dispatch import Dispatcher
 from monitor.alerts.settings import AlertSettings, EmailSettings
 em = EmailSettings(host="127.0.0.1", port=int(sys.argv[2]), security="none",
@@ -60,7 +61,10 @@ def test_sigkill_during_send_repeats_at_most_the_message_in_flight(db_path, tmp_
         script.write_text(SENDER_SCRIPT)
         proc = subprocess.Popen([sys.executable, str(script), str(db_path), str(port)],
                                 stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-        assert handler.stalled.wait(60), "sender never reached the 3rd message"
+        deadline = time.monotonic() + 60
+        while not handler.stalled.wait(0.1):
+            assert proc.poll() is None, f"sender died: {proc.stderr.read().decode(errors='replace')[-800:]}"
+            assert time.monotonic() < deadline, "sender never reached the 3rd message"
         os.kill(proc.pid, signal.SIGKILL)
         proc.wait(30)
         assert proc.returncode == -signal.SIGKILL
