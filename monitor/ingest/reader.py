@@ -20,6 +20,7 @@ from monitor.units import ALLOWED as ALLOWED_UNITS
 from monitor.units import conversion_factor
 
 ROW_COLUMNS = ("source_line", "lot", "value", "timestamp", "product", "line", "head", "unit")
+_MAX_N = 2**53  # the largest n that float64 holds exactly
 SUMMARY_COLUMNS = ("source_line", "lot", "n", "mean", "sd", "product", "line", "unit", "timestamp")
 
 
@@ -185,8 +186,10 @@ class _Rows:
         decimal = self.prof.decimal
         values, status = convert.parse_numbers(self.text(canon), decimal)
         if integer:
-            whole = (status == convert.OK) & (values >= 1) & (np.floor(values) == values)
-            self.flag(~whole, canon, f"{canon} '{{v}}' is not a positive whole number")
+            ok = status == convert.OK
+            whole = ok & (np.where(ok, values, 0) >= 1) & (np.where(ok, values, 0) <= _MAX_N)
+            whole &= np.floor(np.where(whole, values, 0)) == np.where(whole, values, 0)
+            self.flag(~whole, canon, f"{canon} '{{v}}' is not a positive whole number — must be 1 to {_MAX_N}")
             return np.where(whole, values, 0).astype(np.int64)
         mark = "decimal comma" if decimal == "," else "decimal point"
         self.flag(status == convert.NOT_NUMBER, canon,

@@ -61,6 +61,7 @@ def test_wrong_field_count(row: bytes, fragment: str) -> None:
     (b"J2,0,340,1", "n", "n '0' is not a positive whole number"),
     (b"J2,2.5,340,1", "n", "n '2.5' is not a positive whole number"),
     (b"J2,x,340,1", "n", "is not a positive whole number"),
+    (b"J2,1e30,340,1", "n", "n '1e30' is not a positive whole number — must be 1 to 9007199254740992"),
     (b"J2,5,340,-0.1", "sd", "sd '-0.1' is negative"),
     (b"J2,5,abc,1", "mean", "mean 'abc' is not a number"),
 ])

@@ -144,6 +144,7 @@ def test_values_equal_python_float_and_lines_match_construction(cells: list[tupl
     b"lot,value\nEND,\n",
     b";;;\n,,,\n",
     b"lot\tvalue,unit\nA\t1,g\n",
+    b"lot,n,mean,sd\nA,1e30,1,1\nA,-inf,1,1\nA,nan,nan,-0\n",
 ])
 def test_pinned_examples(data: bytes) -> None:
     """Inputs that once tripped the reader or sit on an edge: an Export or an ExportError."""
