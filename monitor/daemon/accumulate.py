@@ -55,7 +55,7 @@ def add_values(conn: sqlite3.Connection, how: Judging, file_id: int, export: Any
     at, ts = utc_iso(now), now.timestamp()
     line_c, prod_c, lot_c = texts(rows, "line", n), texts(rows, "product", n), texts(rows, "lot", n)
     keys = [LotKey(a, b, c) for a, b, c in zip(line_c, prod_c, lot_c)]
-    src = rows["source_line"].to_numpy(dtype=np.int64).tolist() if "source_line" in rows else list(range(1, n + 1))
+    src = rows["source_line"].tolist() if "source_line" in rows.columns else list(range(1, n + 1))
     vals = rows["value"].to_numpy(dtype=np.float64)
     value_c = [float(v) if np.isfinite(v) else None for v in vals.tolist()]
     unit_c = texts(rows, "unit", n, default="g")
@@ -168,26 +168,25 @@ def close_idle_lots(conn: sqlite3.Connection, how: Judging, now: datetime,
 # -- reading the reader's frames ----------------------------------------------------------------
 def texts(df: pd.DataFrame, col: str, n: int, default: str = "") -> list[str]:
     """A text column as Python strings (missing column or value -> ``default``)."""
-    if col not in df:
+    if col not in df.columns:
         return [default] * n
-    s = df[col]
-    if isinstance(s.dtype, pd.StringDtype) and not s.hasnans:
-        return s.tolist()  # the reader's usual case: text, nothing missing
-    return [default if (x is None or x is pd.NA or (isinstance(x, float) and x != x)) else str(x)
-            for x in s.tolist()]
+    out = df[col].tolist()
+    for x in out:
+        if not isinstance(x, str):  # rare: something missing or not text; clean the whole column
+            return [default if (x is None or x is pd.NA or (isinstance(x, float) and x != x)) else str(x)
+                    for x in out]
+    return out
 
 
 def times(df: pd.DataFrame, n: int) -> list[str | None]:
     """The timestamp column as ISO text (None where missing)."""
-    if "timestamp" not in df:
+    if "timestamp" not in df.columns:
         return [None] * n
-    out: list[str | None] = []
-    for x in df["timestamp"].tolist():
-        if x is None or x is pd.NaT or x is pd.NA or (isinstance(x, float) and x != x):
-            out.append(None)
-        else:
-            out.append(x.isoformat() if hasattr(x, "isoformat") else str(x))
-    return out
+    out = df["timestamp"].tolist()
+    if all(isinstance(x, str) for x in out):
+        return out
+    return [None if (x is None or x is pd.NaT or x is pd.NA or (isinstance(x, float) and x != x))
+            else (x.isoformat() if hasattr(x, "isoformat") else str(x)) for x in out]
 
 
 def end_markers(export: Any) -> list[lots.Marker]:

@@ -111,6 +111,7 @@ class Intake:
 
     def __init__(self, config: Config, rules: Sequence[Rule], store: Store, *, clock: Clock = _now,
                  evaluate: judge.Evaluator | None = None) -> None:
+        from monitor import engine  # imported here, at start-up, not when the first lot closes
         from monitor.ingest import read_export_bytes
         from monitor.ingest.profile import profile_for
 
@@ -121,6 +122,7 @@ class Intake:
         self._read = read_export_bytes
         self._profile_for = profile_for
         self._evaluate = evaluate
+        self._engine = engine
         self._lock = threading.RLock()
         self._calls = 0
         self._moved: list[tuple[str, str, int]] = []  # moves done, recorded with the next write transaction
@@ -447,10 +449,7 @@ class Intake:
 
     # -- helpers -------------------------------------------------------------------------------
     def _judging(self) -> Judging:
-        evaluate = self._evaluate
-        if evaluate is None:
-            from monitor import engine
-            evaluate = engine.evaluate
+        evaluate = self._evaluate if self._evaluate is not None else self._engine.evaluate
         return Judging(rules=tuple(self.rules), evaluate=evaluate, channels=tuple(self.config.alerts.channels))
 
     def _maybe_crash(self, point: str, call: int) -> None:
