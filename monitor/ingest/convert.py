@@ -101,7 +101,7 @@ def parse_timestamps(text: pa.ChunkedArray, fmt: str | None) -> tuple[pa.Chunked
     if n == 0 or empty.all():
         return pa.repeat("", n), np.zeros(n, dtype=bool)
     if fmt is not None:
-        return _formatted(pd.to_datetime(_series(text), format=fmt, errors="coerce"), empty)
+        return _formatted(_to_datetime(_series(text), format=fmt), empty)
     try:  # fast path: Arrow's cast takes only ISO 8601 without a zone ("YYYY-MM-DD[ T]hh:mm:ss[.f]")
         filled = text if not empty.any() else pc.if_else(pa.array(empty), pa.scalar("2000-01-01"), text)
         pc.cast(filled, pa.timestamp("us"))
@@ -109,7 +109,7 @@ def parse_timestamps(text: pa.ChunkedArray, fmt: str | None) -> tuple[pa.Chunked
     except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
         pass
     iso = pc.replace_substring_regex(text, _ISO_SPACE, r"\1T")
-    parsed = pd.to_datetime(_series(iso), format="ISO8601", errors="coerce", utc=True)
+    parsed = _to_datetime(_series(iso), format="ISO8601", utc=True)
     shaped = pc.match_substring_regex(iso, _ISO_DATE).to_numpy(zero_copy_only=False)
     bad = (parsed.isna().to_numpy() | ~shaped) & ~empty
     if bad.sum() == (~empty).sum():
@@ -144,6 +144,21 @@ def _inferred(cells: pd.Series) -> pd.Series | None:
     if not agree.any():
         return None
     return month_first.where(agree)
+
+
+def _to_datetime(cells: pd.Series, **options: object) -> pd.Series:
+    """pd.to_datetime with unreadable cells as NaT; mixed zone offsets are read as UTC.
+
+    Raises ValueError only when the format itself cannot be used.
+    """
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            return pd.to_datetime(cells, errors="coerce", **options)
+        except (ValueError, TypeError, OverflowError):
+            if options.get("utc"):
+                raise ValueError("timestamps cannot be read with this format") from None
+            return pd.to_datetime(cells, errors="coerce", utc=True, **options)
 
 
 def _series(text: pa.ChunkedArray) -> pd.Series:

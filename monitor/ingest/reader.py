@@ -117,6 +117,10 @@ class _Rows:
         self.code = np.zeros(self.n, dtype=np.int16)      # 0 = good; else 1 + index into self.reasons
         self.reasons: list[tuple[str, str, pa.ChunkedArray]] = []  # (canonical column, reason template, raw text)
         self.trimmed: dict[str, pa.ChunkedArray] = {}
+        # A line holding only the end-of-lot text (no delimiters) is a marker, not a row with too few fields.
+        eol = prof.end_of_lot
+        self.problems = tuple(p for p in raw.problems if eol is None or p.text.strip() != eol)
+        self.marker_lines = tuple(p.line for p in raw.problems if eol is not None and p.text.strip() == eol)
 
     def text(self, canon: str) -> pa.ChunkedArray | None:
         if canon not in self.index:
@@ -160,8 +164,8 @@ class _Rows:
             self.flag(sd_val < 0, "sd", "sd '{v}' is negative — must be >= 0")
             extra = {"n": n_val, "sd": sd_val}
         good = self.code == 0
-        bad_count = int((self.code > 0).sum()) + len(self.raw.problems)
-        data_rows = int((self.code >= 0).sum() + (self.code == -2).sum()) + len(self.raw.problems)
+        bad_count = int((self.code > 0).sum()) + len(self.problems)
+        data_rows = int((self.code >= 0).sum() + (self.code == -2).sum()) + len(self.problems)
         self._check_budget(bad_count, data_rows, int(good.sum()), int(dropped.sum()))
         frame = self._frame(good, values, units, stamps, extra)
         rows, summaries = (frame, _empty(SUMMARY_COLUMNS)) if self.kind == "values" else (_empty(ROW_COLUMNS), frame)
@@ -223,7 +227,12 @@ class _Rows:
         t = self.text("timestamp")
         if t is None:
             return pa.repeat("", self.n)
-        stamps, bad = convert.parse_timestamps(t, self.prof.timestamp_format)
+        try:
+            stamps, bad = convert.parse_timestamps(t, self.prof.timestamp_format)
+        except ValueError as exc:
+            raise ExportError(f"timestamp_format {self.prof.timestamp_format!r} cannot be used: {exc}",
+                              path=self.name, line=self.header.line, key=f"profiles.{self.prof.name}.timestamp_format",
+                              hint="use strptime directives such as %d.%m.%Y %H:%M:%S") from None
         if self.prof.timestamp_format:
             self.flag(bad, "timestamp", f"timestamp '{{v}}' does not match {self.prof.timestamp_format!r} — "
                                         "fix the row or timestamp_format in the feed profile")
@@ -251,7 +260,7 @@ class _Rows:
 
     def _first_bad(self) -> tuple[int, str, str]:
         """Line, "what is wrong (column 'X')" and "what is allowed" of the first bad row."""
-        cands: list[tuple[int, str, str]] = [(p.line, p.reason, "") for p in self.raw.problems]
+        cands: list[tuple[int, str, str]] = [(p.line, p.reason, "") for p in self.problems]
         hit = np.flatnonzero(self.code > 0)
         if hit.size:
             row = self._describe(int(hit[0]))
@@ -267,18 +276,21 @@ class _Rows:
 
     def _bad_rows(self) -> tuple[BadRow, ...]:
         found = [self._describe(int(i)) for i in np.flatnonzero(self.code > 0)]
-        found += [BadRow(p.line, None, _short(p.text), p.reason) for p in self.raw.problems]
+        found += [BadRow(p.line, None, _short(p.text), p.reason) for p in self.problems]
         return tuple(sorted(found, key=lambda b: b.line))
 
     def _markers(self, marker: np.ndarray) -> tuple[tuple[int, str], ...]:
-        if not marker.any():
+        """(line, lot it closes) of each end-of-lot marker: the lot of the nearest row above with a lot code."""
+        lines = np.sort(np.concatenate([self.raw.lines[marker], np.array(self.marker_lines, dtype=np.int64)]))
+        if lines.size == 0:
             return ()
         lots = self.text("lot")
         carriers = np.flatnonzero(~marker & (pc.binary_length(lots).to_numpy(zero_copy_only=False) > 0))
+        carrier_lines = self.raw.lines[carriers]
         out = []
-        for i in np.flatnonzero(marker):
-            k = np.searchsorted(carriers, i) - 1
-            out.append((int(self.raw.lines[i]), lots[int(carriers[k])].as_py() if k >= 0 else ""))
+        for line in lines:
+            k = int(np.searchsorted(carrier_lines, line)) - 1
+            out.append((int(line), lots[int(carriers[k])].as_py() if k >= 0 else ""))
         return tuple(out)
 
     def _frame(self, good: np.ndarray, values: np.ndarray, units: pa.ChunkedArray, stamps: pa.ChunkedArray,

@@ -164,3 +164,11 @@ def test_missing_file_is_an_export_error(tmp_path: Path) -> None:
     with pytest.raises(ExportError) as info:
         read_export(tmp_path / "gone.csv")
     assert info.value.path == str(tmp_path / "gone.csv") and "cannot read" in str(info.value)
+
+
+def test_unusable_timestamp_format_names_the_profile_key() -> None:
+    """A timestamp_format strptime cannot use is an ExportError naming the profile key."""
+    prof = FeedProfile(name="hall2", timestamp_format="%Q")
+    with pytest.raises(ExportError) as info:
+        read_export_bytes(b"lot,value,timestamp\nA,1,x\n", name="f.csv", profile=prof)
+    assert info.value.key == "profiles.hall2.timestamp_format" and "'%Q' cannot be used" in str(info.value)

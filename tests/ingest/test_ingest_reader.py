@@ -271,3 +271,18 @@ def test_whitespace_around_fields_is_stripped(pad: str) -> None:
     exp = read_export_bytes(data, name="w.csv")
     assert exp.rows["lot"].tolist() == ["A7", "A7"] and exp.rows["unit"].tolist() == ["g", "g"]
     assert values_of(exp)[0] == float(raw.strip())  # str.strip() + float(): the independent reference
+
+
+def test_marker_alone_on_a_line_is_a_marker_not_a_short_row() -> None:
+    """A line holding only the end-of-lot text (no delimiters) closes the lot above it."""
+    exp = read_export_bytes(b"lot,value\nA,1\nEND\nB,3\n END \n", name="m.csv", profile=FeedProfile(end_of_lot="END"))
+    assert exp.end_of_lot == ((3, "A"), (5, "B")) and exp.bad_rows == ()
+
+
+def test_zoned_timestamps_with_a_format_become_utc() -> None:
+    """With %z in timestamp_format, times are rewritten in UTC with "Z" (06:00 at +01:00 is 05:00 UTC)."""
+    prof = FeedProfile(timestamp_format="%d.%m.%Y %H:%M %z")
+    data = b"lot,value,timestamp\nA,1,01.12.2026 06:00 +0100\nA,2,01.12.2026 06:00 +0200\n"
+    exp = read_export_bytes(data, name="z.csv", profile=prof)
+    # UTC = local time - offset (ISO 8601 offset convention)
+    assert exp.rows["timestamp"].tolist() == ["2026-12-01T05:00:00Z", "2026-12-01T04:00:00Z"]
