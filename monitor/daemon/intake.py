@@ -66,12 +66,13 @@ class FileOutcome:
     alerts: tuple[str, ...] = ()          # dedup keys of alerts newly enqueued
     moved_to: str | None = None
     reason: str = ""
+    kind: str = "values"                  # the export's kind: "values" or "summary" (n_values = lot rows)
 
     def describe(self) -> str:
         """One log line."""
         text = f"{self.status} {Path(self.path).name}"
         if self.status in ("taken", "revision"):
-            text += f": {self.n_values} values"
+            text += f": {self.n_values} lot summaries" if self.kind == "summary" else f": {self.n_values} values"
         if self.lots_closed:
             text += f"; lots closed: {', '.join(self.lots_closed)}"
         if self.verdicts:
@@ -297,7 +298,7 @@ class Intake:
                             "archived_path": str(target)})
         it.outcome = FileOutcome(str(it.path), status, file_id=file_id, sha256=it.sha, n_values=n_values,
                                  lots_closed=tuple(tally.closed), verdicts=tuple(tally.verdicts),
-                                 alerts=tuple(tally.alerts))
+                                 alerts=tuple(tally.alerts), kind=kind)
         it.move = (target, "done")
 
     def _mark_rejected(self, conn: sqlite3.Connection, it: _Item, now: datetime, at: str) -> None:

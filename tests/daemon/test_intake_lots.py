@@ -177,6 +177,7 @@ def test_summary_rows_are_lots_of_their_own(intake_env, engine_ready: bool) -> N
                  "OAT-S2,OAT-500,L1,30,501.1,1.3,g\n", encoding="utf-8")
     out = intake.process(p)
     assert [v.key.lot for v in out.verdicts] == ["OAT-S1", "OAT-S2"]
+    assert "2 lot summaries" in out.describe()
     assert store.conn.execute("SELECT count(*) FROM lot_summaries").fetchone()[0] == 2
     assert store.conn.execute("SELECT count(*) FROM lot_values").fetchone()[0] == 0
     assert store.conn.execute("SELECT count(*) FROM lots").fetchone()[0] == 0
