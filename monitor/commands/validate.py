@@ -11,9 +11,9 @@ DEFAULT_CONFIG = "config/lotwarden.toml"
 def register(sub: argparse._SubParsersAction) -> argparse.ArgumentParser:
     p = sub.add_parser(
         "validate", help="check the config and rule files without running (exit 0 ok, 2 with the problem)",
-        description="Load the daemon config, its alert channels, feed profiles and every rule file exactly "
-                    "as `lotwarden run` would, print what was checked, and exit 0; on the first problem "
-                    "print it with file and key and exit 2.")
+        description="Load the daemon config, its alert channels, operator templates, feed profiles and "
+                    "every rule file exactly as `lotwarden run` would, print what was checked, and exit 0; "
+                    "on the first problem print it with file and key and exit 2.")
     p.add_argument("--config", default=DEFAULT_CONFIG, metavar="PATH",
                    help=f"daemon config file (default: {DEFAULT_CONFIG})")
     return p
@@ -35,6 +35,12 @@ def run(args: argparse.Namespace) -> int:
     print(f"  profiles: {len(config.profiles)}" + (f" ({', '.join(names)})" if names else ""))
     channels = config.alerts.channels
     print(f"  alert channels: {', '.join(channels) if channels else 'none (alerts stay in the outbox)'}")
+    templates = getattr(config.alerts, "templates", None)
+    if templates is not None:
+        from monitor.alerts.templates import TemplateSet
+
+        TemplateSet.check(templates)        # TemplateError (file, line) → exit 2
+        print(f"  operator templates: {templates}: ok (checked against sample alerts)")
     mode = f"polling every {watch.poll_interval:g}s" if watch.polling else "native events"
     exists = "" if Path(watch.folder).is_dir() else " (does not exist yet; run creates it)"
     print(f"  watch: {watch.folder}{exists}; {mode}; settle {watch.settle_seconds:g}s; "

@@ -89,28 +89,39 @@ def utc_now_iso() -> str:
 # --------------------------------------------------------------------------------------------- reload
 @dataclass(frozen=True)
 class Fingerprint:
-    """What the reload check compares: (name, size, mtime_ns) of the config and every rule file."""
+    """What the reload check compares: (name, size, mtime_ns) of the config, every rule file and every
+    operator template file."""
 
     stats: tuple[tuple[str, int, int], ...]
     rule_names: frozenset[str] = field(default_factory=frozenset)
+    templates: tuple[tuple[str, int, int], ...] = ()
 
 
-def take_fingerprint(config_path: Path, rules_dir: Path) -> Fingerprint:
-    """Stat the config file and the ``*.toml`` files of ``rules_dir`` (missing ones are simply absent)."""
+def _stat_all(paths: list[Path]) -> list[tuple[str, int, int]]:
     out: list[tuple[str, int, int]] = []
-    paths = [config_path]
-    try:
-        paths += sorted(p for p in Path(rules_dir).glob("*.toml") if not p.name.startswith("."))
-    except OSError:
-        pass
     for p in paths:
         try:
             st = p.stat()
-        except OSError:
+        except OSError:   # missing (mid-edit) files are simply absent from the picture
             continue
         out.append((str(p), int(st.st_size), int(st.st_mtime_ns)))
-    names = frozenset(Path(n).name for n, _, _ in out if n != str(config_path))
-    return Fingerprint(tuple(out), names)
+    return out
+
+
+def _listing(folder: Path | None, suffixes: tuple[str, ...]) -> list[Path]:
+    if folder is None:
+        return []
+    try:
+        return sorted(p for p in Path(folder).iterdir() if p.suffix in suffixes and not p.name.startswith("."))
+    except OSError:
+        return []
+
+
+def take_fingerprint(config_path: Path, rules_dir: Path, templates_dir: Path | None = None) -> Fingerprint:
+    """Stat the config file, the ``*.toml`` files of ``rules_dir`` and the operator templates."""
+    rules = _stat_all(_listing(rules_dir, (".toml",)))
+    return Fingerprint(tuple(_stat_all([config_path]) + rules), frozenset(Path(n).name for n, _, _ in rules),
+                       tuple(_stat_all(_listing(templates_dir, (".txt", ".html")))))
 
 
 def content_hash(paths: list[Path]) -> str:
@@ -145,7 +156,6 @@ class Daemon:
         self._reload_requested = False        # SIGHUP: reload whatever is on disk, accept removals
         self._reload_check_due = False
         self._idle_due = False
-        self._rescan_due = False
         self._config: Any = None
         self._rules: list[Any] = []
         self._store: Any = None
@@ -163,6 +173,7 @@ class Daemon:
         self.idle_check_seconds = IDLE_CHECK_SECONDS       # job intervals; tests may shorten them
         self.supervise_seconds = SUPERVISE_SECONDS
         self.reload_check_seconds = RELOAD_CHECK_SECONDS
+        self._signals: list[str] = []
         self._calls: queue.SimpleQueue[tuple[Callable[[], Any], concurrent.futures.Future[Any]]] = \
             queue.SimpleQueue()
 
@@ -220,14 +231,18 @@ class Daemon:
             print(f"lotwarden: {exc}", file=sys.stderr)
             return 2
         self._config, self._rules = config, rules
-        self._applied_fp = self._seen_fp = take_fingerprint(self.config_path, config.rules_dir)
+        self._applied_fp = self._seen_fp = self._fingerprint(config)
         try:
             self._open(config, rules)
         except LotwardenError as exc:
             log.error("cannot start: %s", exc)
             print(f"lotwarden: {exc}", file=sys.stderr)
-            self._close_quietly()
+            self._shutdown()
             return 2
+        except Exception as exc:  # state folder unwritable, not a local disk, ...: say so, let systemd retry
+            log.exception("cannot start: %s", exc)
+            self._shutdown()
+            return 1
         try:
             self._loop()
         finally:
@@ -249,8 +264,9 @@ class Daemon:
         self._store = Store.open(config.state.folder)
         self._intake = Intake(config, rules, self._store)
         recovered = self._intake.recover()
-        if recovered:
-            log.info("recovered after an unclean stop: %s", recovered)
+        for outcome in recovered or ():
+            describe = getattr(outcome, "describe", None)
+            log.warning("recovered after an unclean stop: %s", describe() if callable(describe) else outcome)
         self._emit_alert("daemon-started", f"daemon-started|{self._started_at}",
                          {"config": str(self.config_path), "rules": [r.name for r in rules],
                           "started_at": self._started_at})
@@ -377,6 +393,7 @@ class Daemon:
         assert self._tracker is not None
         while not self._stop.is_set():
             self._wake.clear()
+            self._log_signals()
             if self._reload_requested or self._reload_check_due:
                 forced, self._reload_requested, self._reload_check_due = self._reload_requested, False, False
                 self._check_reload(forced)
@@ -498,8 +515,11 @@ class Daemon:
         return result
 
     # ------------------------------------------------------------------ reload
+    def _fingerprint(self, config: Any) -> Fingerprint:
+        return take_fingerprint(self.config_path, config.rules_dir, getattr(config.alerts, "templates", None))
+
     def _check_reload(self, forced: bool) -> None:
-        fp = take_fingerprint(self.config_path, self._config.rules_dir)
+        fp = self._fingerprint(self._config)
         if not forced:
             if fp == self._applied_fp:
                 self._seen_fp = fp
@@ -526,9 +546,9 @@ class Daemon:
             self._reject(exc, fp)
             self._applied_fp = self._seen_fp = fp   # do not re-try the same bad picture every check
             return
-        old = self._config
+        old, old_fp = self._config, self._applied_fp
         self._config, self._rules = config, rules
-        self._applied_fp = self._seen_fp = take_fingerprint(self.config_path, config.rules_dir)
+        self._applied_fp = self._seen_fp = self._fingerprint(config)
         self._intake.set_rules(rules)
         if hasattr(self._intake, "set_config"):
             self._intake.set_config(config)
@@ -542,13 +562,27 @@ class Daemon:
                     pass
             if self._dispatcher is not None:
                 self._dispatcher.close()
-            self._dispatcher = self._make_dispatcher(config)
+            self._dispatcher = self._make_dispatcher(config)   # it checks the templates itself
             self._schedule_dispatcher()
+        elif old_fp is not None and self._applied_fp.templates != old_fp.templates:
+            self._reload_templates(config)
         self._audit("config-reloaded", config_version=getattr(config, "version", ""),
                     rules={r.name: r.version for r in rules})
         log.info("reloaded: config version %s, %d rules (%s)", getattr(config, "version", "?"), len(rules),
                  ", ".join(f"{r.name}@{r.version}" for r in rules))
         self._event("reloaded", {"rules": len(rules)})
+
+    def _reload_templates(self, config: Any) -> None:
+        """New operator templates: checked first; a bad set leaves the one in force (config-rejected)."""
+        reload = getattr(self._dispatcher, "reload_templates", None)
+        if reload is None:
+            return
+        try:
+            reload(getattr(config.alerts, "templates", None))
+        except LotwardenError as exc:
+            self._reject(exc, self._applied_fp)
+            return
+        log.info("reloaded operator templates from %s", config.alerts.templates)
 
     def _reject(self, exc: LotwardenError, fp: Fingerprint) -> None:
         bad = Path(exc.path) if exc.path else self.config_path
@@ -588,6 +622,8 @@ class Daemon:
 
     # ------------------------------------------------------------------ shutdown
     def _shutdown(self) -> None:
+        """Stop observer and scheduler, record the stop, drain the outbox briefly, close the database."""
+        self._log_signals()
         log.info("stopping: %d files processed", self.files_done)
         self._run_calls()
         if self._intake is not None:
@@ -631,13 +667,22 @@ class Daemon:
         for sig, fn in old.items():
             signal.signal(sig, fn)
 
+    # Handlers only set flags (no logging inside a signal handler); the loop logs what arrived.
     def _on_stop_signal(self, signum: int, frame: Any) -> None:
-        log.info("signal %s: finishing the file in hand, then stopping", signal.Signals(signum).name)
+        self._signals.append(signal.Signals(signum).name)
         self.stop()
 
     def _on_hup(self, signum: int, frame: Any) -> None:
-        log.info("SIGHUP: reloading config and rules")
+        self._signals.append("SIGHUP")
         self.request_reload()
+
+    def _log_signals(self) -> None:
+        while self._signals:
+            name = self._signals.pop(0)
+            if name == "SIGHUP":
+                log.info("SIGHUP: reloading config and rules")
+            else:
+                log.info("%s: finishing the file in hand, then stopping", name)
 
 
 def _bounded(fn: Callable[[], Any], seconds: float, what: str) -> None:

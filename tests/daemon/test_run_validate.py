@@ -84,3 +84,17 @@ def test_validate_as_a_subprocess(tmp_path):
     assert bad.returncode == 2
     assert "oat-500.toml" in bad.stderr and "colour" in bad.stderr
     assert "Traceback" not in bad.stderr
+
+
+def test_operator_templates_are_checked(tmp_path, capsys):
+    """An operator template folder is loaded and checked; a syntax error exits 2 naming the file."""
+    cfg = make_setup(tmp_path)
+    cfg.write_text(cfg.read_text().replace("[alerts.log]", '[alerts]\ntemplates = "tpl"\n\n[alerts.log]', 1))
+    tpl = tmp_path / "tpl"
+    tpl.mkdir()
+    (tpl / "hold.subject.txt").write_text("HOLD {{ alert.lot }}\n")
+    assert main(["validate", "--config", str(cfg)]) == 0, capsys.readouterr().err
+    assert "operator templates" in capsys.readouterr().out
+    (tpl / "hold.subject.txt").write_text("HOLD {{ alert.lot \n")
+    assert main(["validate", "--config", str(cfg)]) == 2
+    assert "hold.subject.txt" in capsys.readouterr().err

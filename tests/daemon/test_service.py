@@ -135,6 +135,15 @@ def test_bad_config_at_start_exits_2(tmp_path):
     assert "watch2" in log.getvalue() and str(cfg) in log.getvalue()
 
 
+def test_unusable_state_folder_at_start_exits_1_without_leaving_threads(tmp_path):
+    """A state folder that cannot be created (a file is in the way): run() logs why and returns 1."""
+    cfg = make_plant(tmp_path)
+    (tmp_path / "state").write_text("not a folder")
+    log = io.StringIO()
+    assert Daemon(cfg, log_stream=log).run() == 1
+    assert "cannot start" in log.getvalue() and "state" in log.getvalue()
+
+
 def test_slow_writer_taken_once_after_last_chunk(tmp_path):
     """A file written in chunks over longer than settle_seconds is taken once, complete."""
     cfg = make_plant(tmp_path, settle=0.4)
@@ -240,6 +249,24 @@ def test_config_edits_unknown_key_rejected_and_rule_removal_kept(tmp_path):
         assert r.thread.is_alive()
     audit = [e for (e,) in query(db, "SELECT event FROM audit")]
     assert audit.count("config-rejected") == 2
+
+
+def test_bad_operator_template_edit_is_rejected_and_a_fix_reloads(tmp_path):
+    """A template edit with a syntax error raises config-rejected naming the file; fixing it reloads it."""
+    tpl = tmp_path / "tpl"
+    tpl.mkdir()
+    (tpl / "hold.subject.txt").write_text("HOLD {{ alert.lot }}\n")
+    cfg = make_plant(tmp_path)
+    cfg.write_text(cfg.read_text().replace("[alerts]\n", '[alerts]\ntemplates = "tpl"\n', 1))
+    db = tmp_path / "state" / "lotwarden.db"
+    with Running(cfg, reload_check_seconds=0.2) as r:
+        (tpl / "hold.subject.txt").write_text("HOLD {{ alert.lot \n")
+        assert wait_for(lambda: count(db, "SELECT count(*) FROM alerts WHERE kind = 'config-rejected'") == 1)
+        payload = json.loads(query(db, "SELECT payload FROM alerts WHERE kind = 'config-rejected'")[0][0])
+        assert "hold.subject.txt" in payload["data"]["file"]
+        (tpl / "hold.subject.txt").write_text("HOLD {{ alert.line }} {{ alert.lot }}\n")
+        assert wait_for(lambda: "reloaded operator templates" in r.log.getvalue()), r.log.getvalue()
+        assert r.thread.is_alive()
 
 
 def test_dead_observer_is_restarted_by_the_supervisor(tmp_path):
