@@ -350,6 +350,15 @@ def run_demo(out: TextIO | None = None, *, workdir: Path | None = None, start: P
                 story.say(f"  !! {src.name} not taken in time")
                 ok = False
             follower.poll()
+        if samples:
+            again = samples[0]
+            before = daemon.files_done
+            story.say(f"weigher sends {again.name} a second time (same content, new name)")
+            drop_by_rename(again, root / "drop" / f"resent-{again.name}")
+            if not wait_until(lambda: daemon.files_done > before, 8.0):
+                story.say("  !! the re-sent file was not taken in time")
+                ok = False
+            follower.poll()
         story.say("end of shift: closing every open lot")
         fut = daemon.call_soon(lambda d: d.close_all_lots())
         fut.result(timeout=15)

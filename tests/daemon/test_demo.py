@@ -19,6 +19,8 @@ def test_demo_exits_0_and_prints_the_story(tmp_path):
     samples = sorted(p.name for p in (repo / "sample_feeds").iterdir() if p.is_file())
     for name in samples:                                    # every sample file taken, in the story
         assert f"file finished, taken: {name}" in out
+    assert "duplicate resent-" in out                       # the re-sent file is reported, not counted
+    assert "alert logged: file-duplicate" in out
     assert "end of shift: closing every open lot" in out
     assert "Lots and verdicts" in out
     assert "competent authority" in out                     # the screening disclaimer under the table
@@ -28,7 +30,7 @@ def test_demo_exits_0_and_prints_the_story(tmp_path):
     assert not list((work / "drop").iterdir())
     kept = [p.name for p in (work / "state").rglob("*") if p.is_file() and p.parent.parent.name in
             ("archive", "quarantine") and not p.name.endswith(".reason.txt")]
-    assert sorted(kept) == samples
+    assert sorted(kept) == sorted(samples + [f"resent-{samples[0]}"])
     # every alert in the log is a JSON object with a kind
     for raw in (work / "state" / "alerts.jsonl").read_text().splitlines():
         assert json.loads(raw)["kind"]

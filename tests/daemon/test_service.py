@@ -135,6 +135,21 @@ def test_bad_config_at_start_exits_2(tmp_path):
     assert "watch2" in log.getvalue() and str(cfg) in log.getvalue()
 
 
+def test_pause_hook_stops_taking_files_after_n(tmp_path, monkeypatch):
+    """LOTWARDEN_PAUSE_AFTER_FILES=2 (crash-test hook): two files are taken, the rest wait in the drop folder."""
+    monkeypatch.setenv("LOTWARDEN_PAUSE_AFTER_FILES", "2")
+    cfg = make_plant(tmp_path)
+    db = tmp_path / "state" / "lotwarden.db"
+    for i in range(5):
+        (tmp_path / "drop" / f"p-{i}.csv").write_text(HEADER + csv_rows("L1", "P1", [500.0 + i], start=i))
+    with Running(cfg) as r:
+        assert wait_for(lambda: r.daemon.files_done >= 2)
+        time.sleep(0.5)
+        assert r.daemon.files_done == 2
+    assert count(db, "SELECT count(*) FROM files") == 2
+    assert len(list((tmp_path / "drop").glob("p-*.csv"))) == 3
+
+
 def test_unusable_state_folder_at_start_exits_1_without_leaving_threads(tmp_path):
     """A state folder that cannot be created (a file is in the way): run() logs why and returns 1."""
     cfg = make_plant(tmp_path)
