@@ -38,6 +38,9 @@ PROFILES = st.builds(
     drop_values=st.sampled_from([(), ("-9999", "ERR")]),
     max_bad_rows=st.sampled_from([0.0, 0.05, 0.5, 1000.0]),
     end_of_lot=st.sampled_from([None, "END"]),
+    timestamp_format=st.sampled_from([None, "%d.%m.%Y %H:%M:%S"]),
+    tare=st.sampled_from([0.0, 12.5]),
+    unit=st.sampled_from(["g", "mL"]),
 )
 
 
@@ -55,7 +58,8 @@ def test_random_bytes_after_a_valid_header(body: bytes, bom: bytes) -> None:
     read_or_error(bom + b"lot,value,unit,timestamp\n" + body)
 
 
-FIELD = st.lists(st.sampled_from(list('AB01 .,;\t"-eE+\r\n\x00éx') + ["inf", "nan", "END", "ERR", "g", "kg"]),
+FIELD = st.lists(st.sampled_from(list('AB01 .,;\t"-eE+\r\n\x00éx:') + ["inf", "nan", "END", "ERR", "g", "kg", "mL",
+                                                                         "2026-12-01", "01.12.2026", " 06:00"]),
                 max_size=6).map("".join)
 
 
