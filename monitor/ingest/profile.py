@@ -160,6 +160,12 @@ def _parse(table: Mapping[str, Any], source: str, name: str) -> FeedProfile:
             if not isinstance(v, str) or not v.strip():
                 raise fail(f"columns.{k}", f"columns.{k} = {v!r} — must be the export's header text")
             pairs.append((k, v.strip()))
+        seen: dict[str, str] = {}
+        for k, v in pairs:
+            if v.casefold() in seen:
+                raise fail(f"columns.{k}", f"columns.{k} and columns.{seen[v.casefold()]} both name {v!r}",
+                           hint="each canonical column needs its own header")
+            seen[v.casefold()] = k
         values["columns"] = tuple(pairs)
     if "unit" in table:
         u = canonical_unit(text("unit"))

@@ -84,6 +84,7 @@ def test_defaults_match_the_documented_table() -> None:
     ("columns", {"weight": "Net wt"}, "unknown column name 'weight'"),
     ("columns", {"lot": ""}, "header text"),
     ("columns", "lot=Batch", "must be a table"),
+    ("columns", {"lot": "Batch", "value": "batch"}, "both name 'batch'"),
 ])
 def test_bad_values_name_source_key_path_and_what_is_allowed(key: str, value: object, fragment: str) -> None:
     """A wrong key or value raises ConfigError naming the file, `profiles.<name>.<key>` and what is allowed."""

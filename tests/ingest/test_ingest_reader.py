@@ -286,3 +286,10 @@ def test_zoned_timestamps_with_a_format_become_utc() -> None:
     exp = read_export_bytes(data, name="z.csv", profile=prof)
     # UTC = local time - offset (ISO 8601 offset convention)
     assert exp.rows["timestamp"].tolist() == ["2026-12-01T05:00:00Z", "2026-12-01T04:00:00Z"]
+
+
+def test_explicit_encoding_without_bom() -> None:
+    """An explicit codec name reads a file that has no BOM (here UTF-16 little-endian)."""
+    data = "lot,product,value\nJ1,Gelée,340.5\n".encode("utf-16-le")
+    exp = read_export_bytes(data, name="le.csv", profile=FeedProfile(encoding="utf-16-le"))
+    assert exp.rows["product"].tolist() == ["Gelée"] and values_of(exp) == [340.5]
