@@ -391,6 +391,7 @@ class Daemon:
     # ------------------------------------------------------------------ the loop (owner thread)
     def _loop(self) -> None:
         assert self._tracker is not None
+        ready: list[Path] = []     # finished, in arrival order, not yet handed to intake
         while not self._stop.is_set():
             self._wake.clear()
             self._log_signals()
@@ -402,19 +403,21 @@ class Daemon:
                 self._close_idle()
             self._run_calls()
             if not self._paused():
-                finished = self._tracker.look()
-                while finished and not self._stop.is_set() and not self._paused():
-                    room = self._pause_after - self.files_done if self._pause_after else BATCH_FILES
-                    batch, finished = finished[:min(BATCH_FILES, room)], finished[min(BATCH_FILES, room):]
+                known = set(ready)
+                ready += [p for p in self._tracker.look() if p not in known]
+                if ready:          # one batch per turn, so reloads, idle closing and stop are not held up
+                    n = min(BATCH_FILES, self._pause_after - self.files_done if self._pause_after else BATCH_FILES)
+                    batch, ready = ready[:n], ready[n:]
                     self._process(batch)
-                for path in finished:          # not taken because of a stop: next start's scan finds them
-                    self._tracker.hint(path)
+            if ready and not self._paused():
+                continue
             pending = len(self._tracker)
             if not pending:
                 self._flush_intake()
             settle = self._config.watch.settle_seconds
             timeout = min(0.25, max(0.05, settle / 5)) if pending and not self._paused() else 5.0
             self._wake.wait(timeout)
+        # files still in ``ready`` stay in the drop folder: the next start's scan takes them
 
     def _run_calls(self) -> None:
         while True:
