@@ -9,6 +9,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from monitor.ingest.table import TEXT
 from monitor.units import canonical_unit
 
 OK, NOT_NUMBER, NOT_FINITE = 0, 1, 2
@@ -83,9 +84,9 @@ def parse_units(text: pa.ChunkedArray, default: str) -> tuple[pa.ChunkedArray, n
         unit = table[uniques[0]]
         return pa.repeat(unit or "", len(text)), np.full(len(text), unit is None)
     known = [u for u, c in table.items() if c is not None]
-    good = pc.is_in(text, value_set=pa.array(known, pa.string())).to_numpy(zero_copy_only=False)
-    index = pc.index_in(text, value_set=pa.array(known, pa.string()))
-    canon = pa.array([table[u] for u in known], pa.string())
+    good = pc.is_in(text, value_set=pa.array(known, TEXT)).to_numpy(zero_copy_only=False)
+    index = pc.index_in(text, value_set=pa.array(known, TEXT))
+    canon = pa.array([table[u] for u in known], TEXT)
     units = canon.take(pc.fill_null(index, 0)) if known else pa.repeat("", len(text))
     return units, ~good
 
@@ -177,4 +178,4 @@ def _formatted(parsed: pd.Series, empty: np.ndarray) -> tuple[pa.ChunkedArray, n
     if zoned:
         out = out + "Z"
     out[bad | empty] = ""
-    return pa.array(out, pa.string()), bad
+    return pa.array(out, TEXT), bad

@@ -14,7 +14,7 @@ import pyarrow.compute as pc
 from monitor.errors import ExportError
 from monitor.ingest import convert
 from monitor.ingest.profile import CANONICAL_COLUMNS, DEFAULT_PROFILE, FeedProfile
-from monitor.ingest.table import RawTable, split_body
+from monitor.ingest.table import TEXT, RawTable, split_body
 from monitor.ingest.text import Header, decode, find_header
 from monitor.units import ALLOWED as ALLOWED_UNITS
 from monitor.units import conversion_factor
@@ -150,7 +150,7 @@ class _Rows:
         main = "value" if self.kind == "values" else "mean"
         dropped = np.zeros(self.n, dtype=bool)
         if prof.drop_values:
-            dropped = pc.is_in(self.text(main), value_set=pa.array(prof.drop_values, pa.string())).to_numpy(
+            dropped = pc.is_in(self.text(main), value_set=pa.array(prof.drop_values, TEXT)).to_numpy(
                 zero_copy_only=False) & (self.code == 0)
             self.code[dropped] = -2
         values = self._number(main)

@@ -13,6 +13,8 @@ import pyarrow.csv as pacsv
 from monitor.errors import ExportError
 from monitor.ingest.text import Header
 
+TEXT = pa.large_string()  # the storage pandas' "str" columns use: no conversion when building frames
+
 
 @dataclass(frozen=True)
 class RawProblem:
@@ -48,10 +50,10 @@ def split_body(buf: bytes, header: Header, name: str) -> RawTable:
     names = [f"c{i}" for i in range(width)]
     body = memoryview(buf)[header.body_start:]
     if len(body) == 0:
-        return RawTable(tuple(pa.chunked_array([], pa.string()) for _ in names), np.zeros(0, np.int64), ())
+        return RawTable(tuple(pa.chunked_array([], TEXT) for _ in names), np.zeros(0, np.int64), ())
     table, invalid = _parse(body, names, header, name)
     # Chunked columns as the parser made them: combining would copy every column once more.
-    columns = [table.column(c) if table.num_rows else pa.chunked_array([], pa.string()) for c in names]
+    columns = [table.column(c) if table.num_rows else pa.chunked_array([], TEXT) for c in names]
     n_valid = table.num_rows
     if any(num is None for num, _ in invalid):  # cannot happen single-threaded; never guess a line
         raise ExportError("cannot number the rows of this file", path=name)
@@ -94,8 +96,8 @@ def split_body(buf: bytes, header: Header, name: str) -> RawTable:
         else:
             problems.append(RawProblem(line, text, f"too many fields: {len(fields)}, the header has {width}"))
     if recovered:
-        columns = [pa.chunked_array(col.chunks + [pa.array([f[i] for _, f in recovered], pa.string())],
-                                    pa.string()) for i, col in enumerate(columns)]
+        columns = [pa.chunked_array(col.chunks + [pa.array([f[i] for _, f in recovered], TEXT)],
+                                    TEXT) for i, col in enumerate(columns)]
         lines = np.concatenate([lines, np.array([ln for ln, _ in recovered], dtype=np.int64)])
         order = pa.array(np.argsort(lines, kind="stable"))
         lines = lines[order.to_numpy()]
@@ -122,7 +124,7 @@ def _parse(body: memoryview, names: list[str], header: Header, name: str) -> tup
             parse_options=pacsv.ParseOptions(delimiter=header.delimiter, quote_char='"', double_quote=True,
                                              escape_char=False, newlines_in_values=True,
                                              ignore_empty_lines=False, invalid_row_handler=on_invalid),
-            convert_options=pacsv.ConvertOptions(column_types={c: pa.string() for c in names},
+            convert_options=pacsv.ConvertOptions(column_types={c: TEXT for c in names},
                                                  strings_can_be_null=False, quoted_strings_can_be_null=False,
                                                  null_values=[], check_utf8=False),
         )
