@@ -20,8 +20,8 @@ from monitor.units import ALLOWED as ALLOWED_UNITS
 from monitor.units import conversion_factor
 
 ROW_COLUMNS = ("source_line", "lot", "value", "timestamp", "product", "line", "head", "unit")
-_MAX_N = 2**53  # the largest n that float64 holds exactly
 SUMMARY_COLUMNS = ("source_line", "lot", "n", "mean", "sd", "product", "line", "unit", "timestamp")
+_MAX_N = 2**53  # the largest n that float64 holds exactly
 
 
 @dataclass(frozen=True)
@@ -295,6 +295,7 @@ class _Rows:
 
     def _frame(self, good: np.ndarray, values: np.ndarray, units: pa.ChunkedArray, stamps: pa.ChunkedArray,
                extra: dict[str, np.ndarray]) -> pd.DataFrame:
+        """The good rows as the documented frame (ROW_COLUMNS or SUMMARY_COLUMNS), index 0..n-1."""
         mask = pa.array(good)
         every = bool(good.all())
 

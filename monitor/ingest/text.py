@@ -64,7 +64,9 @@ def decode(data: bytes, profile: FeedProfile, name: str) -> bytes:
                           line=_line_of_bytes(out, pos),
                           hint='UTF-16 files need a BOM, or set encoding = "utf-16-le" in the feed profile')
     if b"\r" in out:
-        out = out.replace(b"\r\n", b"\n").replace(b"\r", b"\n")
+        out = out.replace(b"\r\n", b"\n")
+        if b"\r" in out:  # old-style CR-only line ends
+            out = out.replace(b"\r", b"\n")
     return out
 
 
