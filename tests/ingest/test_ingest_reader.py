@@ -293,3 +293,40 @@ def test_explicit_encoding_without_bom() -> None:
     data = "lot,product,value\nJ1,Gelée,340.5\n".encode("utf-16-le")
     exp = read_export_bytes(data, name="le.csv", profile=FeedProfile(encoding="utf-16-le"))
     assert exp.rows["product"].tolist() == ["Gelée"] and values_of(exp) == [340.5]
+
+
+def test_line_numbers_and_values_across_parser_blocks() -> None:
+    """Over a multi-megabyte file (several parser blocks) every row keeps its own line and its value.
+
+    The file mixes good rows, blank lines, short rows, sentinels and non-numbers at seeded random places;
+    expected lines come from where the test put each row, expected values from Python's float().
+    """
+    rng = np.random.default_rng(20261201)
+    lines = ["Brackenfield Foods L3 JUICE-1L", "lot;value;head"]
+    good: dict[int, float] = {}
+    bad: list[int] = []
+    kinds = rng.choice(["good", "blank", "short", "sentinel", "text"], p=[0.96, 0.01, 0.01, 0.01, 0.01],
+                       size=120_000)
+    fills = rng.normal(1012.0, 3.0, size=120_000)
+    for i, kind in enumerate(kinds.tolist()):
+        raw = f"{fills[i]:.3f}"
+        if kind == "good":
+            lines.append(f"L3-{i // 1000:04d};{raw};{i % 6 + 1}")
+            good[len(lines)] = float(raw)          # Python float() of the written text
+        elif kind == "blank":
+            lines.append("")
+        elif kind == "short":
+            lines.append(f"L3-{i // 1000:04d}")
+            bad.append(len(lines))
+        elif kind == "sentinel":
+            lines.append(f"L3-{i // 1000:04d};-9999;1")
+        else:
+            lines.append(f"L3-{i // 1000:04d};n/a;1")
+            bad.append(len(lines))
+    data = ("\r\n".join(lines) + "\r\n").encode()
+    assert len(data) > 2_000_000            # pyarrow parses in 1 MB blocks by default
+    prof = FeedProfile(skip_lines=1, drop_values=("-9999",), max_bad_rows=0.05, unit="mL")
+    exp = read_export_bytes(data, name="l3.csv", profile=prof)
+    assert dict(zip(exp.rows["source_line"].tolist(), exp.rows["value"].tolist())) == good
+    assert [b.line for b in exp.bad_rows] == bad
+    assert exp.dropped == sum(1 for ln in lines if ln.endswith(";-9999;1"))
