@@ -83,32 +83,32 @@ def test_latin1_only_when_the_profile_says_so(tmp_path: Path) -> None:
 
 
 @pytest.mark.parametrize("codec", ["utf-16", "utf-16-le", "utf-16-be"])
-def test_utf16_with_bom(codec: str) -> None:
+def test_utf16_with_bom(codec: str, tmp_path: Path) -> None:
     """UTF-16 (either byte order) is recognised by its BOM."""
     text = "lot,product,value\r\nJ7,Jam 340 g ä,341.5\r\nJ7,Jam 340 g ä,339.25\r\n"
     bom = {"utf-16": b"", "utf-16-le": codecs.BOM_UTF16_LE, "utf-16-be": codecs.BOM_UTF16_BE}[codec]
-    exp = read_export_bytes(bom + text.encode(codec), name="u16.csv")
+    exp = read_export(write(tmp_path, "u16.csv", bom + text.encode(codec)))
     assert exp.rows["product"].tolist() == ["Jam 340 g ä"] * 2
     assert values_of(exp) == [341.5, 339.25]
     assert exp.rows["source_line"].tolist() == [2, 3]
 
 
-def test_utf8_bom() -> None:
+def test_utf8_bom(tmp_path: Path) -> None:
     """A UTF-8 BOM does not end up in the first header name."""
-    exp = read_export_bytes(codecs.BOM_UTF8 + b"Lot,Value\nA,1.5\n", name="bom.csv")
+    exp = read_export(write(tmp_path, "bom.csv", codecs.BOM_UTF8 + b"Lot,Value\nA,1.5\n"))
     assert values_of(exp) == [1.5] and exp.rows["source_line"].tolist() == [2]
 
 
-def test_tab_delimited_sniffed() -> None:
+def test_tab_delimited_sniffed(tmp_path: Path) -> None:
     """Tabs are sniffed from the header line."""
-    exp = read_export_bytes(b"lot\tvalue\tproduct\nA\t1.5\tJUICE-1L\nA\t2\tJUICE-1L\n", name="t.tsv")
+    exp = read_export(write(tmp_path, "t.tsv", b"lot\tvalue\tproduct\nA\t1.5\tJUICE-1L\nA\t2\tJUICE-1L\n"))
     assert values_of(exp) == [1.5, 2.0] and exp.rows["product"].tolist() == ["JUICE-1L"] * 2
 
 
-def test_column_mapping_and_case_insensitive_headers() -> None:
+def test_column_mapping_and_case_insensitive_headers(tmp_path: Path) -> None:
     """Mapped headers are found case-insensitively after trimming; unmapped canonical names too."""
     prof = FeedProfile(columns=(("lot", "Batch"), ("value", "Net wt")))
-    exp = read_export_bytes(b" BATCH ,net WT, Head \nB9,500.5,3\n", name="m.csv", profile=prof)
+    exp = read_export(write(tmp_path, "m.csv", b" BATCH ,net WT, Head \nB9,500.5,3\n"), prof)
     assert exp.rows["lot"].tolist() == ["B9"] and values_of(exp) == [500.5] and exp.rows["head"].tolist() == ["3"]
 
 
