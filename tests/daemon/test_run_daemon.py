@@ -13,7 +13,6 @@ import time
 from collections import Counter
 from pathlib import Path
 
-import pytest
 
 RULE = textwrap.dedent("""\
     name = "oat-500"
