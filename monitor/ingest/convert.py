@@ -106,7 +106,8 @@ def parse_timestamps(text: pa.ChunkedArray, fmt: str | None) -> tuple[pa.Chunked
     try:  # fast path: Arrow's cast takes only ISO 8601 without a zone ("YYYY-MM-DD[ T]hh:mm:ss[.f]")
         filled = text if not empty.any() else pc.if_else(pa.array(empty), pa.scalar("2000-01-01"), text)
         pc.cast(filled, pa.timestamp("us"))
-        return pc.replace_substring(text, " ", "T", max_replacements=1), np.zeros(n, dtype=bool)
+        spaced = may_need_trim(text)  # no byte below 0x21 anywhere: no space to turn into "T"
+        return (pc.replace_substring(text, " ", "T", max_replacements=1) if spaced else text), np.zeros(n, bool)
     except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
         pass
     iso = pc.replace_substring_regex(text, _ISO_SPACE, r"\1T")
