@@ -494,13 +494,10 @@ class Daemon:
         dest_of_export = getattr(outcome, "archived_path", None) or getattr(outcome, "moved_to", None)
         if not marker.exists() or not dest_of_export:
             return
-        dest = Path(dest_of_export).parent / marker.name
-        n = 1
-        while dest.exists():
-            dest = dest.with_name(f"{marker.name}.{n}")
-            n += 1
+        from monitor.daemon.archive import free_name, move_file
+
         try:
-            os.replace(marker, dest)
+            move_file(marker, free_name(Path(dest_of_export).parent, marker.name))   # never overwrites
         except OSError as exc:
             log.warning("cannot move marker %s: %s", marker, exc)
 

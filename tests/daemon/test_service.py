@@ -284,6 +284,26 @@ def test_bad_operator_template_edit_is_rejected_and_a_fix_reloads(tmp_path):
         assert r.thread.is_alive()
 
 
+def test_marker_profile_waits_for_the_marker_and_archives_it(tmp_path):
+    """With marker_suffix, a settled file waits for '<name>.done'; the marker then moves beside the export."""
+    cfg = make_plant(tmp_path, extra="""
+        [profiles.marked]
+        match = ["m-*.csv"]
+        marker_suffix = ".done"
+        """)
+    db = tmp_path / "state" / "lotwarden.db"
+    with Running(cfg):
+        (tmp_path / "drop" / "m-1.csv").write_text(HEADER + csv_rows("L1", "M1", [500.0, 500.2]))
+        time.sleep(1.0)                                   # five settle times: still waiting for the marker
+        assert count(db, "SELECT count(*) FROM files") == 0
+        (tmp_path / "drop" / "m-1.csv.done").write_text("")
+        assert wait_for(lambda: count(db, "SELECT count(*) FROM files WHERE state = 'done'") == 1)
+        assert wait_for(lambda: not (tmp_path / "drop" / "m-1.csv.done").exists())
+    archived = Path(query(db, "SELECT archived_path FROM files")[0][0])
+    assert (archived.parent / "m-1.csv.done").exists()
+    assert not list((tmp_path / "drop").iterdir())
+
+
 def test_dead_observer_is_restarted_by_the_supervisor(tmp_path):
     """When the observer thread dies, the supervisor job restarts it and rescans."""
     cfg = make_plant(tmp_path)
