@@ -8,6 +8,7 @@ from pathlib import Path
 
 import pytest
 
+
 CANON = "timestamp,line,product,lot,head,value,unit\n"
 
 
@@ -185,3 +186,22 @@ def test_a_batch_gives_the_same_result_as_one_by_one(intake_env, tmp_path: Path,
             assert store.conn.execute(sql).fetchall() == store2.conn.execute(sql).fetchall(), sql
     assert [v for (v,) in store.conn.execute("SELECT value FROM lot_values ORDER BY id")] == \
         [r[3] for name in ("1.csv", "2.csv", "3.csv") for r in specs[name]]  # values as written, file order
+
+
+def test_archive_names_never_overwrite(tmp_path: Path) -> None:
+    """free_name picks name-1, name-2 … past files on disk and names planned for others; moves never clobber."""
+    from monitor.daemon.archive import free_name, move_file
+
+    folder = tmp_path / "archive" / "2026-11-30"
+    folder.mkdir(parents=True)
+    (folder / "L1.csv").write_text("first")
+    planned = {folder / "L1-1.csv"}
+    assert free_name(folder, "L1.csv", lambda p: p in planned) == folder / "L1-2.csv"
+    assert free_name(folder, "NOEXT", lambda p: False) == folder / "NOEXT"
+    src = tmp_path / "L1.csv"
+    src.write_text("second")
+    with pytest.raises(FileExistsError):
+        move_file(src, folder / "L1.csv")
+    assert (folder / "L1.csv").read_text() == "first" and src.read_text() == "second"
+    move_file(src, folder / "L1-2.csv")
+    assert (folder / "L1-2.csv").read_text() == "second" and not src.exists()
