@@ -304,6 +304,17 @@ def test_marker_profile_waits_for_the_marker_and_archives_it(tmp_path):
     assert not list((tmp_path / "drop").iterdir())
 
 
+def test_idle_lot_is_closed_by_the_periodic_job(tmp_path):
+    """A lot with no new values for the rule's idle_minutes is closed and judged by the idle job."""
+    cfg = make_plant(tmp_path)
+    (tmp_path / "rules" / "oat-500.toml").write_text(RULE_OAT.replace("idle_minutes = 30", "idle_minutes = 0.01"))
+    db = tmp_path / "state" / "lotwarden.db"
+    with Running(cfg, idle_check_seconds=0.2):
+        write_atomically(tmp_path / "drop" / "idle.csv", HEADER + csv_rows("L1", "I1", [500.0, 500.3, 499.9]))
+        assert wait_for(lambda: count(db, "SELECT count(*) FROM verdicts WHERE lot = 'I1'") == 1)
+    assert query(db, "SELECT state, close_reason FROM lots WHERE lot = 'I1'") == [("closed", "idle")]
+
+
 def test_dead_observer_is_restarted_by_the_supervisor(tmp_path):
     """When the observer thread dies, the supervisor job restarts it and rescans."""
     cfg = make_plant(tmp_path)
