@@ -252,12 +252,21 @@ class Intake:
         at = utc_iso(now)
         with self._write() as conn:
             for it in todo:
-                if self._mark_duplicate(conn, it, now, at):  # same content earlier in this batch
-                    continue
-                if it.error is not None:
+                conn.execute("SAVEPOINT one_file")
+                try:
+                    if self._mark_duplicate(conn, it, now, at):  # same content earlier in this batch
+                        pass
+                    elif it.error is not None:
+                        self._mark_rejected(conn, it, now, at)
+                    else:
+                        self._take(conn, it, now, at)
+                except Exception as exc:  # a bug of ours on this file: undo its part, keep it safe, tell people
+                    conn.execute("ROLLBACK TO one_file")
+                    log.exception("intake failed on %s; quarantining it", it.path)
+                    it.error = (f"lotwarden failed on this file ({type(exc).__name__}: {exc}); it is kept in"
+                                " quarantine for a person to look at", None)
                     self._mark_rejected(conn, it, now, at)
-                else:
-                    self._take(conn, it, now, at)
+                conn.execute("RELEASE one_file")
         for it in todo:
             self._maybe_crash("after-commit", it.call)
             self._maybe_crash("before-archive", it.call)

@@ -205,3 +205,29 @@ def test_archive_names_never_overwrite(tmp_path: Path) -> None:
     assert (folder / "L1.csv").read_text() == "first" and src.read_text() == "second"
     move_file(src, folder / "L1-2.csv")
     assert (folder / "L1-2.csv").read_text() == "second" and not src.exists()
+
+
+def test_an_internal_failure_on_one_file_spares_the_batch(intake_env, monkeypatch) -> None:
+    """If intake itself fails on one file, that file's part is undone and it is quarantined; the rest commit."""
+    from monitor.daemon import accumulate
+
+    cfg, store, intake, drop = intake_env
+    write_export(drop, "1.csv", oat("OAT-24A101", [500.0, 501.0]))
+    write_export(drop, "2.csv", oat("OAT-24A101", [502.0, 503.0]))
+    write_export(drop, "3.csv", oat("OAT-24A101", [504.0]))
+    real = accumulate.add_values
+
+    def failing_on_second(conn, how, file_id, export, *args, **kw):  # fault injection for this test
+        if export.path.endswith("2.csv"):
+            real(conn, how, file_id, export, *args, **kw)  # writes rows, then fails: they must be undone
+            raise RuntimeError("injected fault")
+        return real(conn, how, file_id, export, *args, **kw)
+
+    monkeypatch.setattr(accumulate, "add_values", failing_on_second)
+    outs = intake.process_batch(sorted(drop.iterdir()))
+    assert [o.status for o in outs] == ["taken", "rejected", "taken"]
+    assert "injected fault" in outs[1].reason
+    assert [v for (v,) in store.conn.execute("SELECT value FROM lot_values ORDER BY id")] == [500.0, 501.0, 504.0]
+    assert store.conn.execute("SELECT n FROM lots").fetchone() == (3,)
+    assert (cfg.state.quarantine / "2026-11-30" / "2.csv").exists()
+    assert count(store, "SELECT count(*) FROM alerts WHERE kind='file-rejected'") == 1
