@@ -17,6 +17,7 @@ from monitor.errors import TemplateError
 
 log = logging.getLogger("monitor.alerts")
 CHART_KINDS = ("hold",)
+MAX_CHARTS = 10     # charts per message: a grouped message of 50 holds stays small and quick to build
 
 
 def chart_for(alert: Alert) -> bytes | None:
@@ -57,7 +58,7 @@ def build_message(alerts: list[Alert], *, sender: str, recipients: tuple[str, ..
     mid = message_id([a.dedup_key for a in alerts], sender.rpartition("@")[2])
     token = mid.strip("<>").split("@")[0]
     for i, a in enumerate(alerts):
-        png = chart_for(a)
+        png = chart_for(a) if len(charts) < MAX_CHARTS else None
         cid = None
         if png is not None:
             cid = f"chart{i}.{token}@lotwarden"
