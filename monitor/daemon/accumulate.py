@@ -10,6 +10,7 @@ from __future__ import annotations
 import sqlite3
 from dataclasses import dataclass, field
 from datetime import datetime
+from itertools import repeat
 from typing import Any, Callable, Sequence
 
 import numpy as np
@@ -46,39 +47,105 @@ def lot_name(key: LotKey) -> str:
 
 def add_values(conn: sqlite3.Connection, how: Judging, file_id: int, export: Any, density: float | None,
                now: datetime, tally: Tally, after_first_insert: Callable[[], None] = lambda: None) -> int:
-    """Append an export's rows to their lots and close / judge lots as the rows and markers say."""
+    """Append an export's rows to their lots and close / judge lots as the rows and markers say.
+
+    Works from the frame's arrays: rows are grouped by (line, product, lot) with ``pandas.factorize`` and
+    inserted segment by segment in chunks of ``CHUNK_ROWS``, so no per-row Python object lives for the
+    whole file at once.
+    """
     rows: pd.DataFrame = export.rows
     n = len(rows)
     markers = end_markers(export)
     if n == 0 and not markers:
         return 0
     at, ts = utc_iso(now), now.timestamp()
-    line_c, prod_c, lot_c = texts(rows, "line", n), texts(rows, "product", n), texts(rows, "lot", n)
-    keys = [LotKey(a, b, c) for a, b, c in zip(line_c, prod_c, lot_c)]
-    src = rows["source_line"].tolist() if "source_line" in rows.columns else list(range(1, n + 1))
-    vals = rows["value"].to_numpy(dtype=np.float64)
-    value_c = [float(v) if np.isfinite(v) else None for v in vals.tolist()]
-    unit_c = texts(rows, "unit", n, default="g")
-    head_c = texts(rows, "head", n)
-    time_c = times(rows, n)
+    codes, keys = lot_codes(rows, n)
+    src = (rows["source_line"].to_numpy(dtype=np.int64) if "source_line" in rows.columns
+           else np.arange(1, n + 1, dtype=np.int64))
+    cols = RowColumns(rows, src, n)
     open_rows = conn.execute("SELECT line, product, lot FROM lots WHERE state = 'open' ORDER BY id").fetchall()
-    plan = lots.plan_file({r[0]: LotKey(*r) for r in open_rows}, lots.find_runs(keys), src, markers)
+    plan = lots.plan_file({r[0]: LotKey(*r) for r in open_rows}, lots.runs_of_codes(codes, keys), src, markers)
+    del codes
     first = True
     for step in plan.steps:
         if isinstance(step, lots.Segment):
-            k = step.key
-            lot_id, seq0 = open_lot(conn, k, at, ts, step.stop - step.start, file_id)
-            conn.executemany(
-                "INSERT INTO lot_values(lot_id, line, product, lot, seq, value, unit, density, head, timestamp,"
-                " file_id, source_line) VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
-                [(lot_id, k.line, k.product, k.lot, seq0 + j, value_c[i], unit_c[i], density, head_c[i],
-                  time_c[i], file_id, src[i]) for j, i in enumerate(range(step.start, step.stop))])
+            lot_id, seq0 = open_lot(conn, step.key, at, ts, step.stop - step.start, file_id)
+            insert_values(conn, lot_id, step.key, seq0, cols, step.start, step.stop, density, file_id)
             if first:
                 first = False
                 after_first_insert()
         else:
             close_lot(conn, how, step.key, step.reason, at, file_id, tally)
     return n
+
+
+CHUNK_ROWS = 50_000
+INSERT_VALUE = ("INSERT INTO lot_values(lot_id, line, product, lot, seq, value, unit, density, head, timestamp,"
+                " file_id, source_line) VALUES (?,?,?,?,?,?,?,?,?,?,?,?)")
+
+
+class RowColumns:
+    """The frame's per-row columns, handed out as Python lists one slice at a time (no whole-file lists)."""
+
+    def __init__(self, rows: pd.DataFrame, source_lines: np.ndarray, n: int) -> None:
+        self.rows = rows
+        self.n = n
+        self.source_lines = source_lines
+        self.values = (rows["value"].to_numpy(dtype=np.float64) if "value" in rows.columns
+                       else np.full(n, np.nan))
+
+    def value_list(self, a: int, b: int) -> list[float | None]:
+        """Values ``a:b``; None for a non-finite value (stored as NULL)."""
+        v = self.values[a:b]
+        finite = np.isfinite(v)
+        if finite.all():
+            return v.tolist()
+        out = v.astype(object)
+        out[~finite] = None
+        return out.tolist()
+
+    def text_list(self, col: str, a: int, b: int, default: str = "") -> list[str]:
+        return texts(self.rows.iloc[a:b], col, b - a, default) if col in self.rows.columns else [default] * (b - a)
+
+    def time_list(self, a: int, b: int) -> list[str | None]:
+        return times(self.rows.iloc[a:b], b - a)
+
+
+def insert_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, seq0: int, cols: RowColumns, start: int,
+                  stop: int, density: float | None, file_id: int) -> None:
+    """Insert rows ``start:stop`` (one lot) with seq from ``seq0``, ``CHUNK_ROWS`` rows per executemany."""
+    for a in range(start, stop, CHUNK_ROWS):
+        b = min(a + CHUNK_ROWS, stop)
+        seq = seq0 + (a - start)
+        conn.executemany(INSERT_VALUE, zip(
+            repeat(lot_id), repeat(key.line), repeat(key.product), repeat(key.lot), range(seq, seq + (b - a)),
+            cols.value_list(a, b), cols.text_list("unit", a, b, default="g"), repeat(density),
+            cols.text_list("head", a, b), cols.time_list(a, b), repeat(file_id),
+            cols.source_lines[a:b].tolist()))
+
+
+def lot_codes(rows: pd.DataFrame, n: int) -> tuple[np.ndarray, list[LotKey]]:
+    """A dense lot code per row (numbered by first appearance) and the ``LotKey`` of each code."""
+    if n == 0:
+        return np.empty(0, dtype=np.int64), []
+    parts = [text_codes(rows, col, n) for col in ("line", "product", "lot")]
+    combined = parts[0][0]
+    for codes, names in parts[1:]:  # pairwise, so the combined number stays below n * n
+        combined = pd.factorize(combined * max(len(names), 1) + codes)[0]
+    _, first = np.unique(combined, return_index=True)
+    keys = [LotKey(*(names[codes[i]] for codes, names in parts)) for i in first.tolist()]
+    return combined.astype(np.int64, copy=False), keys
+
+
+def text_codes(df: pd.DataFrame, col: str, n: int) -> tuple[np.ndarray, list[str]]:
+    """A text column as (code per row, distinct cleaned texts); missing column or value -> ""."""
+    if col not in df.columns:
+        return np.zeros(n, dtype=np.int64), [""]
+    codes, uniques = pd.factorize(df[col], use_na_sentinel=True)
+    names = texts(pd.DataFrame({col: pd.Series(list(uniques) + [""], dtype=object)}), col, len(uniques) + 1)
+    codes = np.where(codes < 0, len(names) - 1, codes)
+    merged, distinct = pd.factorize(pd.Series(names, dtype=object))  # two raw texts may clean to the same
+    return merged[codes].astype(np.int64), [str(x) for x in distinct]
 
 
 def open_lot(conn: sqlite3.Connection, key: LotKey, at: str, ts: float, count: int, file_id: int) -> tuple[int, int]:

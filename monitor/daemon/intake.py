@@ -244,6 +244,7 @@ class Intake:
         except Exception as exc:  # a reader bug: keep the file safe and tell people
             log.exception("reader failed on %s", it.path)
             it.error = (f"the reader failed ({type(exc).__name__}: {exc})", None)
+        it.data = b""  # the bytes are hashed and read; do not hold them while the values are stored
 
     def _settle(self, todo: list[_Item], now: datetime) -> None:
         """Transaction 2: every file of the batch done, duplicate or rejected, with all it caused."""

@@ -31,38 +31,57 @@ def no_rule_reason(product: str) -> str:
     return f"no rule matches product {product or '(none)'!r}; add a rule file naming it under `products`"
 
 
+FETCH_ROWS = 50_000
+
+
 def load_lot_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, rule: Rule | None
                     ) -> tuple[LotData, str | None]:
     """The stored values of a lot in arrival order, converted to the rule's unit, as LotData.
 
     Returns ``(lot, problem)``; ``problem`` names why the lot cannot be judged (unconvertible units).
+    Values are read ``FETCH_ROWS`` rows at a time into one float64 array; heads share one string per
+    distinct head, so a lot of a million values costs a few tens of MB, not hundreds.
     """
-    rows = conn.execute("SELECT value, unit, density, head FROM lot_values WHERE lot_id = ? ORDER BY seq",
-                        (lot_id,)).fetchall()
+    pairs = conn.execute("SELECT unit, density, min(seq) AS first FROM lot_values WHERE lot_id = ?"
+                         " GROUP BY unit, density ORDER BY first", (lot_id,)).fetchall()
     files = tuple(r[0] for r in conn.execute(
         "SELECT f.path FROM lot_values v JOIN files f ON f.id = v.file_id WHERE v.lot_id = ?"
         " GROUP BY v.file_id ORDER BY min(v.seq)", (lot_id,)))
-    values = np.array([np.nan if r[0] is None else r[0] for r in rows], dtype=np.float64)
-    heads_raw = [r[3] or "" for r in rows]
-    heads = tuple(heads_raw) if any(heads_raw) else None
-    unit = rows[0][1] if rows else (rule.unit if rule else "g")
     problem = None
+    factor: dict[tuple[str, float | None], float] = {}
     if rule is not None and rule.unit:
-        factors = np.empty(len(rows), dtype=np.float64)
-        memo: dict[tuple[str, float | None], float] = {}
-        for i, (_v, u, d, _h) in enumerate(rows):
-            k = (u, d)
-            if k not in memo:
-                try:
-                    memo[k] = conversion_factor(u, rule.unit, d)
-                except ValueError as exc:
-                    memo[k] = math.nan
-                    problem = problem or f"values in {u!r} cannot be judged in {rule.unit}: {exc}"
-            factors[i] = memo[k]
-        if problem is None:
-            values = values * factors
-            unit = rule.unit
-    return LotData(key=key, values=values, heads=heads, files=files, unit=unit), problem
+        for u, d, _first in pairs:
+            try:
+                factor[(u, d)] = conversion_factor(u, rule.unit, d)
+            except ValueError as exc:
+                factor[(u, d)] = math.nan
+                problem = problem or f"values in {u!r} cannot be judged in {rule.unit}: {exc}"
+    convert = rule is not None and bool(rule.unit) and problem is None
+    unit = rule.unit if convert else (pairs[0][0] if pairs else (rule.unit if rule else "g"))
+    one_factor = factor[(pairs[0][0], pairs[0][1])] if convert and len(pairs) == 1 else None
+    per_row = convert and len(pairs) > 1
+    cols = "value, head, unit, density" if per_row else "value, head"
+    cur = conn.execute(f"SELECT {cols} FROM lot_values WHERE lot_id = ? ORDER BY seq", (lot_id,))
+    chunks: list[np.ndarray] = []
+    heads: list[str] = []
+    shared: dict[str, str] = {}
+    while True:
+        rows = cur.fetchmany(FETCH_ROWS)
+        if not rows:
+            break
+        chunk = np.array([r[0] for r in rows], dtype=np.float64)  # NULL (non-finite as exported) -> nan
+        if per_row:
+            chunk *= np.array([factor[(r[-2], r[-1])] for r in rows], dtype=np.float64)
+        chunks.append(chunk)
+        heads.extend(shared.setdefault(r[1], r[1]) for r in rows)
+        del rows
+    values = np.concatenate(chunks) if chunks else np.empty(0, dtype=np.float64)
+    del chunks
+    if one_factor is not None and one_factor != 1.0:
+        values *= one_factor
+    named = any(shared)  # some value names its head
+    return LotData(key=key, values=values, heads=tuple(heads) if named else None, files=files,
+                   unit=unit), problem
 
 
 def summary_lot(key: LotKey, n: int, mean: float, sd: float, unit: str, density: float | None,

@@ -16,8 +16,11 @@ The policy (documented in README's daemon section):
 
 from __future__ import annotations
 
+from bisect import bisect_right
 from dataclasses import dataclass
 from typing import Callable, Iterable, Mapping, Sequence
+
+import numpy as np
 
 from monitor.lot import LotKey
 
@@ -85,11 +88,23 @@ def find_runs(keys: Sequence[LotKey]) -> list[Segment]:
     return runs
 
 
+def runs_of_codes(codes: np.ndarray, keys: Sequence[LotKey]) -> list[Segment]:
+    """Consecutive runs of equal codes (``keys[code]`` is the code's lot), as segments; one per run, not per row."""
+    n = len(codes)
+    if n == 0:
+        return []
+    bounds = (np.flatnonzero(codes[1:] != codes[:-1]) + 1).tolist()
+    starts, stops = [0, *bounds], [*bounds, n]
+    firsts = codes[starts].tolist()
+    return [Segment(keys[c], a, b) for c, a, b in zip(firsts, starts, stops)]
+
+
 def plan_file(open_lots: Mapping[str, LotKey], runs: Sequence[Segment], source_lines: Sequence[int],
               markers: Iterable[Marker] = ()) -> LotPlan:
     """Plan one file: ``open_lots`` maps line -> open lot before the file; ``runs`` from ``find_runs``.
 
-    ``source_lines[i]`` is the file line of row ``i``, used to place markers between rows.
+    ``source_lines[i]`` is the file line of row ``i`` (rising with ``i``, as in a file), used to place markers
+    between rows; a list or a numpy array.
     """
     open_now = dict(open_lots)
     steps: list[Step] = []
@@ -116,13 +131,16 @@ def plan_file(open_lots: Mapping[str, LotKey], runs: Sequence[Segment], source_l
         open_now[line] = run.key
         last_line = line
         # markers inside a run split it: rows before the marker, closure, rows after reopen the lot
+        # (source lines rise with the row position, so the first row after a marker is found by bisection)
         start = run.start
-        for i in range(run.start + 1, run.stop):
-            if mi < len(pending) and pending[mi].source_line < source_lines[i]:
-                steps.append(Segment(run.key, start, i))
-                start = i
-                take_markers_before(source_lines[i], i)
-                open_now[line] = run.key
+        while mi < len(pending):
+            i = bisect_right(source_lines, pending[mi].source_line, start + 1, run.stop)
+            if i >= run.stop:
+                break
+            steps.append(Segment(run.key, start, i))
+            start = i
+            take_markers_before(source_lines[i], i)
+            open_now[line] = run.key
         steps.append(Segment(run.key, start, run.stop))
     end = len(source_lines)
     take_markers_before(float("inf"), end)
