@@ -9,7 +9,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from monitor.ingest.table import TEXT
+from monitor.ingest.table import FRAME_TEXT, TEXT
 from monitor.units import canonical_unit
 
 OK, NOT_NUMBER, NOT_FINITE = 0, 1, 2
@@ -82,7 +82,7 @@ def parse_units(text: pa.ChunkedArray, default: str) -> tuple[pa.ChunkedArray, n
     table = {u: (canonical_unit(u) if u.strip() else default) for u in uniques}
     if len(uniques) == 1:  # the usual case: one unit for the whole file
         unit = table[uniques[0]]
-        return pa.repeat(unit or "", len(text)), np.full(len(text), unit is None)
+        return pa.repeat(pa.scalar(unit or "", FRAME_TEXT), len(text)), np.full(len(text), unit is None)
     known = [u for u, c in table.items() if c is not None]
     good = pc.is_in(text, value_set=pa.array(known, TEXT)).to_numpy(zero_copy_only=False)
     index = pc.index_in(text, value_set=pa.array(known, TEXT))
@@ -100,7 +100,7 @@ def parse_timestamps(text: pa.ChunkedArray, fmt: str | None) -> tuple[pa.Chunked
     n = len(text)
     empty = pc.equal(pc.binary_length(text), 0).to_numpy(zero_copy_only=False)
     if n == 0 or empty.all():
-        return pa.repeat("", n), np.zeros(n, dtype=bool)
+        return pa.repeat(pa.scalar("", FRAME_TEXT), n), np.zeros(n, dtype=bool)
     if fmt is not None:
         return _formatted(_to_datetime(_series(text), format=fmt), empty)
     try:  # fast path: Arrow's cast takes only ISO 8601 without a zone ("YYYY-MM-DD[ T]hh:mm:ss[.f]")

@@ -14,7 +14,7 @@ import pyarrow.compute as pc
 from monitor.errors import ExportError
 from monitor.ingest import convert
 from monitor.ingest.profile import CANONICAL_COLUMNS, DEFAULT_PROFILE, FeedProfile
-from monitor.ingest.table import TEXT, RawTable, split_body
+from monitor.ingest.table import FRAME_TEXT, TEXT, RawTable, split_body
 from monitor.ingest.text import Header, decode, find_header
 from monitor.units import ALLOWED as ALLOWED_UNITS
 from monitor.units import conversion_factor
@@ -203,7 +203,7 @@ class _Rows:
 
     def _units(self) -> pa.ChunkedArray:
         if "unit" not in self.index:
-            return pa.repeat(self.prof.unit, self.n)
+            return pa.repeat(pa.scalar(self.prof.unit, FRAME_TEXT), self.n)
         # parse_units strips each distinct spelling itself: no need to trim a million cells first
         units, unknown = convert.parse_units(self.raw.columns[self.index["unit"]], self.prof.unit)
         self.flag(unknown, "unit", f"unknown unit '{{v}}' — allowed: {ALLOWED_UNITS}")
@@ -226,7 +226,7 @@ class _Rows:
     def _timestamps(self) -> pa.ChunkedArray:
         t = self.text("timestamp")
         if t is None:
-            return pa.repeat("", self.n)
+            return pa.repeat(pa.scalar("", FRAME_TEXT), self.n)
         try:
             stamps, bad = convert.parse_timestamps(t, self.prof.timestamp_format)
         except ValueError as exc:
@@ -295,36 +295,61 @@ class _Rows:
 
     def _frame(self, good: np.ndarray, values: np.ndarray, units: pa.ChunkedArray, stamps: pa.ChunkedArray,
                extra: dict[str, np.ndarray]) -> pd.DataFrame:
-        """The good rows as the documented frame (ROW_COLUMNS or SUMMARY_COLUMNS), index 0..n-1."""
-        mask = pa.array(good)
+        """The good rows as the documented frame (ROW_COLUMNS or SUMMARY_COLUMNS), index 0..n-1.
+
+        Text columns become pandas "str" arrays over the Arrow data already in hand (no copy when every row
+        is good); each raw column is let go as soon as its frame column exists.
+        """
         every = bool(good.all())
+        mask = None if every else pa.array(good)
 
-        def text(arr: pa.ChunkedArray) -> pd.Series:
-            return pd.Series(arr if every else arr.filter(mask), dtype="str")
+        def text(arr: pa.ChunkedArray | None) -> pd.api.extensions.ExtensionArray:
+            if arr is None:
+                return _str_array(_repeat("", len(values) if every else int(good.sum())))
+            return _str_array(arr if mask is None else arr.filter(mask))
 
-        cols: dict[str, pd.Series | np.ndarray] = {"source_line": self.raw.lines[good].astype(np.int64),
-                                                   "lot": text(self.text("lot"))}
+        cols: dict[str, object] = {"source_line": self.raw.lines if every else self.raw.lines[good],
+                                   "lot": text(self.text("lot"))}
         for canon in ("product", "line", "head"):
-            t = self.text(canon)
-            cols[canon] = text(t if t is not None else pa.repeat("", self.n))
+            cols[canon] = text(self.text(canon))
+            self.trimmed.pop(canon, None)
         cols["unit"] = text(units)
+        del units
         cols["timestamp"] = text(stamps)
+        del stamps
         if self.kind == "values":
-            cols["value"] = values[good].astype(np.float64)
-            return pd.DataFrame({c: _plain(cols[c]) for c in ROW_COLUMNS})
-        cols["mean"] = values[good].astype(np.float64)
-        cols["n"] = extra["n"][good]
-        cols["sd"] = extra["sd"][good].astype(np.float64)
-        return pd.DataFrame({c: _plain(cols[c]) for c in SUMMARY_COLUMNS})
+            cols["value"] = values if every else values[good]
+            order = ROW_COLUMNS
+        else:
+            cols["mean"] = values if every else values[good]
+            cols["n"] = extra["n"] if every else extra["n"][good]
+            cols["sd"] = extra["sd"] if every else extra["sd"][good]
+            order = SUMMARY_COLUMNS
+        return pd.DataFrame({c: cols[c] for c in order}, index=pd.RangeIndex(int(good.sum())), copy=False)
 
 
-def _plain(col: pd.Series | np.ndarray) -> pd.Series | np.ndarray:
-    return col.reset_index(drop=True) if isinstance(col, pd.Series) else col
+_STR = pd.Series([], dtype="str").dtype  # pandas' default string dtype (pyarrow storage, NaN as missing)
+
+def _str_array(arr: pa.ChunkedArray) -> pd.api.extensions.ExtensionArray:
+    """A pandas "str" array over ``arr`` (cast to large_string: new offsets, the same character data)."""
+    if arr.type != FRAME_TEXT:
+        arr = arr.cast(FRAME_TEXT)
+    return pd.arrays.ArrowStringArray(arr, dtype=_STR)
+
+
+def _repeat(text: str, n: int) -> pa.ChunkedArray:
+    return pa.chunked_array([pa.repeat(pa.scalar(text, FRAME_TEXT), n)], FRAME_TEXT)
+
+
+_EMPTY: dict[tuple[str, ...], pd.DataFrame] = {}
 
 
 def _empty(columns: tuple[str, ...]) -> pd.DataFrame:
-    kinds = {"source_line": "int64", "value": "float64", "mean": "float64", "sd": "float64", "n": "int64"}
-    return pd.DataFrame({c: pd.Series([], dtype=kinds.get(c, "str")) for c in columns})
+    """An empty frame with the documented dtypes: a copy of one built once (callers may change theirs)."""
+    if columns not in _EMPTY:
+        kinds = {"source_line": "int64", "value": "float64", "mean": "float64", "sd": "float64", "n": "int64"}
+        _EMPTY[columns] = pd.DataFrame({c: pd.Series([], dtype=kinds.get(c, "str")) for c in columns})
+    return _EMPTY[columns].copy(deep=False)  # copy-on-write: a change to one copy never reaches another
 
 
 def _short(text: str, limit: int = 80) -> str:

@@ -13,7 +13,13 @@ import pyarrow.csv as pacsv
 from monitor.errors import ExportError
 from monitor.ingest.text import Header
 
-TEXT = pa.large_string()  # the storage pandas' "str" columns use: no conversion when building frames
+# Raw text columns use 32-bit offsets: a parsed million-row table is a third smaller than with large_string.
+# Only the columns an Export keeps are cast to large_string (pandas' "str" storage; the data buffer is shared).
+TEXT = pa.string()
+FRAME_TEXT = pa.large_string()  # small bodies are split straight into this type: nothing to cast later
+# Bodies up to this size without any quote character are split in Python: pyarrow's CSV reader costs more
+# to set up than such a file takes to split. Rows of any other width send the body to pyarrow.
+FAST_PATH_MAX_BYTES = 256 * 1024
 
 
 @dataclass(frozen=True)
@@ -51,6 +57,10 @@ def split_body(buf: bytes, header: Header, name: str) -> RawTable:
     body = memoryview(buf)[header.body_start:]
     if len(body) == 0:
         return RawTable(tuple(pa.chunked_array([], TEXT) for _ in names), np.zeros(0, np.int64), ())
+    quoted = buf.find(b'"', header.body_start) >= 0
+    small = _split_small(body, width, header) if len(body) <= FAST_PATH_MAX_BYTES and not quoted else None
+    if small is not None:
+        return small
     table, invalid = _parse(body, names, header, name)
     # Chunked columns as the parser made them: combining would copy every column once more.
     columns = [table.column(c) if table.num_rows else pa.chunked_array([], TEXT) for c in names]
@@ -62,11 +72,10 @@ def split_body(buf: bytes, header: Header, name: str) -> RawTable:
         inv_num = np.array([num for num, _ in invalid], dtype=np.int64)
         valid_rec = np.setdiff1d(np.arange(1, total + 1, dtype=np.int64), inv_num, assume_unique=True)
     else:
-        valid_rec = np.arange(1, total + 1, dtype=np.int64)
+        valid_rec = slice(1, None)  # every record: no index array for a million rows
     # Record k sits on line header.line + k as long as no record before it spans lines; the first one that
     # does makes the file rejected (a missing closing quote swallows every row up to the next quote).
     first_line = header.line + np.arange(total + 1, dtype=np.int64)
-    quoted = buf.find(b'"', header.body_start) >= 0
     if quoted:
         extra = np.zeros(total + 1, dtype=np.int64)
         if n_valid:
@@ -103,6 +112,30 @@ def split_body(buf: bytes, header: Header, name: str) -> RawTable:
         lines = lines[order.to_numpy()]
         columns = [c.take(order) for c in columns]
     return RawTable(tuple(columns), lines, tuple(problems), quoted)
+
+
+def _split_small(body: memoryview, width: int, header: Header) -> RawTable | None:
+    """The body (which has no quote character) split on the delimiter when every line has ``width`` fields.
+
+    Gives what pyarrow gives for such a body (no quoting, no escapes, "\\n" the only line end after
+    decoding); None when the body needs pyarrow's rules (quotes, blank lines, rows of another width).
+    """
+    if width < 2:
+        return None
+    text = str(body, "utf-8")
+    rows = text.split("\n")
+    if rows[-1] == "":
+        rows.pop()
+    delim = header.delimiter
+    expect = width - 1
+    if not rows or text.count(delim) != expect * len(rows):
+        return None
+    fields = [r.split(delim) for r in rows]
+    if any(len(f) != width for f in fields):
+        return None
+    columns = tuple(pa.chunked_array([pa.array(col, FRAME_TEXT)], FRAME_TEXT) for col in zip(*fields))
+    lines = np.arange(header.line + 1, header.line + 1 + len(rows), dtype=np.int64)
+    return RawTable(columns, lines, (), False)
 
 
 def _parse(body: memoryview, names: list[str], header: Header, name: str) -> tuple[pa.Table, list[tuple[int, str]]]:
