@@ -52,19 +52,27 @@ class Export:
 def read_export(path: str | Path, profile: FeedProfile | None = None) -> Export:
     """Read an export file; raises ExportError (path, line, column, what is allowed) when it is unusable."""
     try:
-        data = Path(path).read_bytes()
+        data = [Path(path).read_bytes()]
     except OSError as exc:
         raise ExportError(f"cannot read the file: {exc.strerror or exc}", path=str(path)) from None
-    return read_export_bytes(data, name=str(path), profile=profile)
+    return _read(data, str(path), profile)
 
 
 def read_export_bytes(data: bytes, *, name: str, profile: FeedProfile | None = None) -> Export:
     """Read an export from bytes already in memory; ``name`` is used in errors and ``Export.path``."""
+    return _read([data], name, profile)
+
+
+def _read(holder: list[bytes], name: str, profile: FeedProfile | None) -> Export:
+    """Read the bytes in ``holder``, which it empties: once split, the file's bytes are let go (when no
+    caller holds them too), so a large file and its parsed columns are not both kept while the frame is built.
+    """
     prof = profile or DEFAULT_PROFILE
-    buf = decode(data, prof, name)
+    buf = decode(holder.pop(), prof, name)
     header = find_header(buf, prof, name)
     index, kind = _resolve_columns(header, prof, name)
     raw = split_body(buf, header, name)
+    del buf
     return _Rows(raw, header, index, kind, prof, name).build()
 
 
