@@ -22,6 +22,7 @@ from monitor.units import conversion_factor
 ROW_COLUMNS = ("source_line", "lot", "value", "timestamp", "product", "line", "head", "unit")
 SUMMARY_COLUMNS = ("source_line", "lot", "n", "mean", "sd", "product", "line", "unit", "timestamp")
 _MAX_N = 2**53  # the largest n that float64 holds exactly
+_GIVE_BACK_ROWS = 50_000
 
 
 @dataclass(frozen=True)
@@ -71,9 +72,20 @@ def _read(holder: list[bytes], name: str, profile: FeedProfile | None) -> Export
     buf = decode(holder.pop(), prof, name)
     header = find_header(buf, prof, name)
     index, kind = _resolve_columns(header, prof, name)
-    raw = split_body(buf, header, name)
+    rows = _Rows(split_body(buf, header, name), header, index, kind, prof, name)
     del buf
-    return _Rows(raw, header, index, kind, prof, name).build()
+    _give_back(rows.n)
+    return rows.build()
+
+
+def _give_back(rows: int) -> None:
+    """After a large file's buffers are freed, ask Arrow's allocator to return the free pages to the system.
+
+    Without this, mimalloc keeps freed parse buffers resident and the next allocations of another size
+    raise the peak; for small files it is skipped (nothing worth returning).
+    """
+    if rows >= _GIVE_BACK_ROWS:
+        pa.default_memory_pool().release_unused()
 
 
 def _resolve_columns(header: Header, prof: FeedProfile, name: str) -> tuple[dict[str, int], str]:
@@ -120,7 +132,10 @@ class _Rows:
 
     def __init__(self, raw: RawTable, header: Header, index: dict[str, int], kind: str, prof: FeedProfile,
                  name: str) -> None:
-        self.raw, self.header, self.index, self.kind, self.prof, self.name = raw, header, index, kind, prof, name
+        self.header, self.index, self.kind, self.prof, self.name = header, index, kind, prof, name
+        # The raw columns, each let go (None) once nothing more is read from it: see _release.
+        self.columns: list[pa.ChunkedArray | None] = list(raw.columns)
+        self.lines = raw.lines
         self.n = raw.size
         self.code = np.zeros(self.n, dtype=np.int16)      # 0 = good; else 1 + index into self.reasons
         self.reasons: list[tuple[str, str, pa.ChunkedArray]] = []  # (canonical column, reason template, raw text)
@@ -134,7 +149,8 @@ class _Rows:
         if canon not in self.index:
             return None
         if canon not in self.trimmed:
-            col = self.raw.columns[self.index[canon]]
+            col = self.columns[self.index[canon]]
+            assert col is not None, f"column {canon} read after release"
             self.trimmed[canon] = convert.trim(col) if convert.may_need_trim(col) else col
         return self.trimmed[canon]
 
@@ -142,7 +158,7 @@ class _Rows:
         """Mark rows as bad with ``reason`` ("{v}" is replaced by the raw field) unless already bad."""
         fresh = mask & (self.code == 0)
         if fresh.any():
-            self.reasons.append((canon, reason, self.raw.columns[self.index[canon]]))
+            self.reasons.append((canon, reason, self.columns[self.index[canon]]))  # type: ignore[arg-type]
             self.code[fresh] = len(self.reasons)
 
     def build(self) -> Export:
@@ -175,11 +191,25 @@ class _Rows:
         bad_count = int((self.code > 0).sum()) + len(self.problems)
         data_rows = int((self.code >= 0).sum() + (self.code == -2).sum()) + len(self.problems)
         self._check_budget(bad_count, data_rows, int(good.sum()), int(dropped.sum()))
+        bad_rows, markers = self._bad_rows(), self._markers(marker)
+        del lot
+        self._release(keep=("lot", "product", "line", "head"))
         frame = self._frame(good, values, units, stamps, extra)
         rows, summaries = (frame, _empty(SUMMARY_COLUMNS)) if self.kind == "values" else (_empty(ROW_COLUMNS), frame)
         return Export(path=self.name, kind=self.kind, rows=rows, summaries=summaries,  # type: ignore[arg-type]
-                      bad_rows=self._bad_rows(), dropped=int(dropped.sum()), end_of_lot=self._markers(marker),
+                      bad_rows=bad_rows, dropped=int(dropped.sum()), end_of_lot=markers,
                       density=prof.density, profile=prof.name)
+
+    def _release(self, keep: tuple[str, ...] = ()) -> None:
+        """Let go of every raw column except those of ``keep`` (a large file's text need not outlive its use)."""
+        kept = {self.index[c] for c in keep if c in self.index}
+        for i in range(len(self.columns)):
+            if i not in kept:
+                self.columns[i] = None
+        for canon in list(self.trimmed):
+            if canon not in keep:
+                del self.trimmed[canon]
+        _give_back(self.n)
 
     def _blank(self, lot: pa.ChunkedArray) -> np.ndarray:
         """Rows whose every field is empty or whitespace (empty lines, lines of delimiters only)."""
@@ -188,7 +218,8 @@ class _Rows:
         if cand.size:
             take = pa.array(cand)
             empty = np.ones(cand.size, dtype=bool)
-            for col in self.raw.columns:
+            for col in self.columns:
+                assert col is not None
                 empty &= pc.equal(pc.binary_length(convert.trim(col.take(take))), 0).to_numpy(zero_copy_only=False)
             blank[cand[empty]] = True
         return blank
@@ -213,7 +244,7 @@ class _Rows:
         if "unit" not in self.index:
             return pa.repeat(pa.scalar(self.prof.unit, FRAME_TEXT), self.n)
         # parse_units strips each distinct spelling itself: no need to trim a million cells first
-        units, unknown = convert.parse_units(self.raw.columns[self.index["unit"]], self.prof.unit)
+        units, unknown = convert.parse_units(self.columns[self.index["unit"]], self.prof.unit)  # type: ignore[arg-type]
         self.flag(unknown, "unit", f"unknown unit '{{v}}' — allowed: {ALLOWED_UNITS}")
         return units
 
@@ -279,7 +310,7 @@ class _Rows:
     def _describe(self, i: int) -> BadRow:
         canon, template, raw = self.reasons[self.code[i] - 1]
         value = raw[i].as_py()
-        return BadRow(int(self.raw.lines[i]), self.header.names[self.index[canon]], value,
+        return BadRow(int(self.lines[i]), self.header.names[self.index[canon]], value,
                       template.replace("{v}", _short(value.strip())))
 
     def _bad_rows(self) -> tuple[BadRow, ...]:
@@ -289,12 +320,12 @@ class _Rows:
 
     def _markers(self, marker: np.ndarray) -> tuple[tuple[int, str], ...]:
         """(line, lot it closes) of each end-of-lot marker: the lot of the nearest row above with a lot code."""
-        lines = np.sort(np.concatenate([self.raw.lines[marker], np.array(self.marker_lines, dtype=np.int64)]))
+        lines = np.sort(np.concatenate([self.lines[marker], np.array(self.marker_lines, dtype=np.int64)]))
         if lines.size == 0:
             return ()
         lots = self.text("lot")
         carriers = np.flatnonzero(~marker & (pc.binary_length(lots).to_numpy(zero_copy_only=False) > 0))
-        carrier_lines = self.raw.lines[carriers]
+        carrier_lines = self.lines[carriers]
         out = []
         for line in lines:
             k = int(np.searchsorted(carrier_lines, line)) - 1
@@ -316,11 +347,12 @@ class _Rows:
                 return _str_array(_repeat("", len(values) if every else int(good.sum())))
             return _str_array(arr if mask is None else arr.filter(mask))
 
-        cols: dict[str, object] = {"source_line": self.raw.lines if every else self.raw.lines[good],
-                                   "lot": text(self.text("lot"))}
-        for canon in ("product", "line", "head"):
+        cols: dict[str, object] = {"source_line": self.lines if every else self.lines[good]}
+        kept = ["lot", "product", "line", "head"]
+        while kept:
+            canon = kept.pop(0)
             cols[canon] = text(self.text(canon))
-            self.trimmed.pop(canon, None)
+            self._release(keep=tuple(kept))
         cols["unit"] = text(units)
         del units
         cols["timestamp"] = text(stamps)
@@ -341,7 +373,7 @@ _STR = pd.Series([], dtype="str").dtype  # pandas' default string dtype (pyarrow
 def _str_array(arr: pa.ChunkedArray) -> pd.api.extensions.ExtensionArray:
     """A pandas "str" array over ``arr`` (cast to large_string: new offsets, the same character data)."""
     if arr.type != FRAME_TEXT:
-        arr = arr.cast(FRAME_TEXT)
+        arr = pc.cast(arr, FRAME_TEXT, memory_pool=pa.system_memory_pool())
     return pd.arrays.ArrowStringArray(arr, dtype=_STR)
 
 
