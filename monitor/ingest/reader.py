@@ -23,6 +23,7 @@ ROW_COLUMNS = ("source_line", "lot", "value", "timestamp", "product", "line", "h
 SUMMARY_COLUMNS = ("source_line", "lot", "n", "mean", "sd", "product", "line", "unit", "timestamp")
 _MAX_N = 2**53  # the largest n that float64 holds exactly
 _GIVE_BACK_ROWS = 50_000
+SMALL_FRAME_ROWS = 10_000  # frames up to this many rows are built by _from_arrays (see _frame_of)
 
 
 @dataclass(frozen=True)
@@ -365,10 +366,30 @@ class _Rows:
             cols["n"] = extra["n"] if every else extra["n"][good]
             cols["sd"] = extra["sd"] if every else extra["sd"][good]
             order = SUMMARY_COLUMNS
-        return pd.DataFrame({c: cols[c] for c in order}, index=pd.RangeIndex(int(good.sum())), copy=False)
+        return _frame_of([cols[c] for c in order], order, int(good.sum()))
 
 
 _STR = pd.Series([], dtype="str").dtype  # pandas' default string dtype (pyarrow storage, NaN as missing)
+
+_COLUMN_INDEX = {cols: pd.Index(cols) for cols in (ROW_COLUMNS, SUMMARY_COLUMNS)}  # immutable: shared
+
+
+def _frame_of(arrays: list[object], columns: tuple[str, ...], n: int) -> pd.DataFrame:
+    """A frame over ``arrays`` (already of the documented dtypes and length ``n``).
+
+    For a small frame, pandas' ``DataFrame._from_arrays`` (when this pandas has it) skips the dict and
+    column-name handling that costs most of a small file's frame; it copies numeric arrays into 2-D
+    blocks, so a large frame takes the dict constructor, which keeps them without a copy.
+    """
+    index = pd.RangeIndex(n)
+    from_arrays = getattr(pd.DataFrame, "_from_arrays", None)
+    if from_arrays is not None and n <= SMALL_FRAME_ROWS:
+        try:
+            return from_arrays(arrays, columns=_COLUMN_INDEX[columns], index=index, verify_integrity=False)
+        except TypeError:  # another signature in another pandas version
+            pass
+    return pd.DataFrame(dict(zip(columns, arrays)), index=index, copy=False)
+
 
 def _str_array(arr: pa.ChunkedArray) -> pd.api.extensions.ExtensionArray:
     """A pandas "str" array over ``arr`` (cast to large_string: new offsets, the same character data)."""

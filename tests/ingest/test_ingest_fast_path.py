@@ -1,4 +1,4 @@
-"""The small-file path (Python split) and the general path (pyarrow's CSV parser) give identical Exports.
+"""The small-file paths (Python split, pandas' array constructor) and the general ones give identical Exports.
 
 Reference for every comparison here: pyarrow.csv.read_csv, the general path, reading the same bytes; the
 canonical file is also checked against Python's standard csv module and float().
@@ -19,7 +19,7 @@ from hypothesis import strategies as st
 
 from monitor.errors import ExportError
 from monitor.ingest import Export, FeedProfile, read_export_bytes
-from monitor.ingest import table
+from monitor.ingest import reader, table
 from monitor.ingest.profile import DEFAULT_PROFILE
 from monitor.ingest.text import decode, find_header
 
@@ -28,13 +28,13 @@ FUZZ = settings(max_examples=120, deadline=None, suppress_health_check=[HealthCh
 
 @contextmanager
 def general_path_only() -> Iterator[None]:
-    """Every body goes to pyarrow's parser while inside."""
-    saved = table.FAST_PATH_MAX_BYTES
-    table.FAST_PATH_MAX_BYTES = 0
+    """Every body goes to pyarrow's parser, and every frame to the dict constructor, while inside."""
+    saved = table.FAST_PATH_MAX_BYTES, reader.SMALL_FRAME_ROWS
+    table.FAST_PATH_MAX_BYTES, reader.SMALL_FRAME_ROWS = 0, -1
     try:
         yield
     finally:
-        table.FAST_PATH_MAX_BYTES = saved
+        table.FAST_PATH_MAX_BYTES, reader.SMALL_FRAME_ROWS = saved
 
 
 def outcome(data: bytes, profile: FeedProfile | None) -> Export | ExportError:
