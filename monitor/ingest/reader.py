@@ -137,6 +137,7 @@ class _Rows:
         # The raw columns, each let go (None) once nothing more is read from it: see _release.
         self.columns: list[pa.ChunkedArray | None] = list(raw.columns)
         self.lines = raw.lines
+        self.clean = raw.clean
         self.n = raw.size
         self.code = np.zeros(self.n, dtype=np.int16)      # 0 = good; else 1 + index into self.reasons
         self.reasons: list[tuple[str, str, pa.ChunkedArray]] = []  # (canonical column, reason template, raw text)
@@ -152,7 +153,7 @@ class _Rows:
         if canon not in self.trimmed:
             col = self.columns[self.index[canon]]
             assert col is not None, f"column {canon} read after release"
-            self.trimmed[canon] = convert.trim(col) if convert.may_need_trim(col) else col
+            self.trimmed[canon] = convert.trim(col) if not self.clean and convert.may_need_trim(col) else col
         return self.trimmed[canon]
 
     def flag(self, mask: np.ndarray, canon: str, reason: str) -> None:
@@ -169,9 +170,10 @@ class _Rows:
         if prof.end_of_lot is not None:
             marker = pc.equal(lot, prof.end_of_lot).to_numpy(zero_copy_only=False)
         self.code[marker] = -1
-        self.code[self._blank(lot)] = -3
-        self.flag(pc.equal(pc.binary_length(lot), 0).to_numpy(zero_copy_only=False), "lot",
-                  "empty lot code — every measurement needs its lot")
+        lot_empty = pc.equal(pc.binary_length(lot), 0).to_numpy(zero_copy_only=False)
+        self.code[self._blank(lot_empty)] = -3
+        self.flag(lot_empty, "lot", "empty lot code — every measurement needs its lot")
+        del lot_empty
         main = "value" if self.kind == "values" else "mean"
         dropped = np.zeros(self.n, dtype=bool)
         if prof.drop_values:
@@ -212,10 +214,10 @@ class _Rows:
                 del self.trimmed[canon]
         _give_back(self.n)
 
-    def _blank(self, lot: pa.ChunkedArray) -> np.ndarray:
+    def _blank(self, lot_empty: np.ndarray) -> np.ndarray:
         """Rows whose every field is empty or whitespace (empty lines, lines of delimiters only)."""
         blank = np.zeros(self.n, dtype=bool)
-        cand = np.flatnonzero(pc.equal(pc.binary_length(lot), 0).to_numpy(zero_copy_only=False))
+        cand = np.flatnonzero(lot_empty)
         if cand.size:
             take = pa.array(cand)
             empty = np.ones(cand.size, dtype=bool)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import csv
+import re
 from dataclasses import dataclass
 
 import numpy as np
@@ -17,6 +18,7 @@ from monitor.ingest.text import Header
 # Only the columns an Export keeps are cast to large_string (pandas' "str" storage; the data buffer is shared).
 TEXT = pa.string()
 FRAME_TEXT = pa.large_string()  # small bodies are split straight into this type: nothing to cast later
+_UNCLEAN = re.compile(rb"[^\x21-\x7e\n]")  # a byte that may be (part of) whitespace around a field
 # Bodies up to this size without any quote character are split in Python: pyarrow's CSV reader costs more
 # to set up than such a file takes to split. Rows of any other width send the body to pyarrow.
 FAST_PATH_MAX_BYTES = 256 * 1024
@@ -39,6 +41,7 @@ class RawTable:
     lines: np.ndarray
     problems: tuple[RawProblem, ...]
     quoted: bool = False
+    clean: bool = False  # True: no cell has a byte outside 0x21..0x7E, so none needs trimming
 
     @property
     def size(self) -> int:
@@ -135,7 +138,8 @@ def _split_small(body: memoryview, width: int, header: Header) -> RawTable | Non
         return None
     columns = tuple(pa.chunked_array([pa.array(col, FRAME_TEXT)], FRAME_TEXT) for col in zip(*fields))
     lines = np.arange(header.line + 1, header.line + 1 + len(rows), dtype=np.int64)
-    return RawTable(columns, lines, (), False)
+    clean = delim != "\t" and _UNCLEAN.search(body) is None  # "," and ";" lie inside 0x21..0x7E
+    return RawTable(columns, lines, (), False, clean)
 
 
 def _parse(body: memoryview, names: list[str], header: Header, name: str) -> tuple[pa.Table, list[tuple[int, str]]]:
