@@ -15,6 +15,8 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from monitor.daemon import judge, lots
 from monitor.daemon.store import Store, utc_iso
@@ -85,67 +87,120 @@ INSERT_VALUE = ("INSERT INTO lot_values(lot_id, line, product, lot, seq, value, 
 
 
 class RowColumns:
-    """The frame's per-row columns, handed out as Python lists one slice at a time (no whole-file lists)."""
+    """The frame's per-row columns as Python lists, one window of ``CHUNK_ROWS`` rows at a time.
+
+    Windows are aligned to multiples of ``CHUNK_ROWS``, so each row becomes Python objects once and at
+    most one window's worth of them is alive (a small file is one window, shared by all its segments).
+    Text columns are kept as Arrow arrays (missing -> default) and sliced without copying.
+    """
 
     def __init__(self, rows: pd.DataFrame, source_lines: np.ndarray, n: int) -> None:
-        self.rows = rows
         self.n = n
         self.source_lines = source_lines
         self.values = (rows["value"].to_numpy(dtype=np.float64) if "value" in rows.columns
                        else np.full(n, np.nan))
+        self.unit = arrow_text(rows, "unit", n, DEFAULT_UNIT)
+        self.head = arrow_text(rows, "head", n, "")
+        self.stamp: pa.Array | pa.ChunkedArray | pd.Series | None = None
+        if "timestamp" in rows.columns:
+            ser = rows["timestamp"]
+            self.stamp = arrow_text(rows, "timestamp", n, None) if _is_text(ser) else ser
+        self.window = -1
+        self.lists: tuple[list[Any], ...] = ()
 
-    def value_list(self, a: int, b: int) -> list[float | None]:
-        """Values ``a:b``; None for a non-finite value (stored as NULL)."""
-        v = self.values[a:b]
-        finite = np.isfinite(v)
-        if finite.all():
-            return v.tolist()
-        out = v.astype(object)
-        out[~finite] = None
-        return out.tolist()
+    def window_of(self, row: int) -> tuple[int, int, tuple[list[Any], ...]]:
+        """(first row, end row, lists of value, unit, head, timestamp, source line) of ``row``'s window."""
+        w = row // CHUNK_ROWS
+        a, b = w * CHUNK_ROWS, min((w + 1) * CHUNK_ROWS, self.n)
+        if w != self.window:
+            self.lists = ()  # let the previous window go before building the next
+            if self.stamp is None:
+                stamps: list[str | None] = [None] * (b - a)
+            elif isinstance(self.stamp, pd.Series):
+                stamps = time_list(self.stamp.iloc[a:b].tolist())
+            else:
+                stamps = self.stamp.slice(a, b - a).to_pylist()
+            self.lists = (finite_list(self.values[a:b]), self.unit.slice(a, b - a).to_pylist(),
+                          self.head.slice(a, b - a).to_pylist(), stamps, self.source_lines[a:b].tolist())
+            self.window = w
+        return a, b, self.lists
 
-    def text_list(self, col: str, a: int, b: int, default: str = "") -> list[str]:
-        return texts(self.rows.iloc[a:b], col, b - a, default) if col in self.rows.columns else [default] * (b - a)
 
-    def time_list(self, a: int, b: int) -> list[str | None]:
-        return times(self.rows.iloc[a:b], b - a)
+def _is_text(ser: pd.Series) -> bool:
+    return ser.dtype == object or isinstance(ser.dtype, pd.StringDtype)
+
+
+def arrow_text(df: pd.DataFrame, col: str, n: int, default: str | None) -> pa.Array | pa.ChunkedArray:
+    """A text column as an Arrow string array without copying where pandas keeps it in Arrow already;
+    a missing column or value is ``default``."""
+    if col not in df.columns:
+        return pa.array([default] * n, type=pa.large_string()) if default is not None else pa.nulls(n, pa.large_string())
+    ser = df[col]
+    arr: pa.Array | pa.ChunkedArray | None
+    try:
+        arr = pa.array(ser.array)
+    except (pa.ArrowException, TypeError, ValueError):
+        arr = None
+    if arr is None or not (pa.types.is_string(arr.type) or pa.types.is_large_string(arr.type)):
+        cleaned: list[Any] = text_list(ser.tolist(), "") if default is not None else time_list(ser.tolist())
+        if default is not None and default != "":
+            cleaned = [x if x != "" or y is not None else default for x, y in zip(cleaned, ser.tolist())]
+        arr = pa.array(cleaned, type=pa.large_string())
+    if default is not None and arr.null_count:
+        arr = pc.fill_null(arr, default)
+    return arr
 
 
 def insert_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, seq0: int, cols: RowColumns, start: int,
                   stop: int, density: float | None, file_id: int) -> None:
-    """Insert rows ``start:stop`` (one lot) with seq from ``seq0``, ``CHUNK_ROWS`` rows per executemany."""
-    for a in range(start, stop, CHUNK_ROWS):
-        b = min(a + CHUNK_ROWS, stop)
+    """Insert rows ``start:stop`` (one lot) with seq from ``seq0``: one executemany per window they touch."""
+    a = start
+    while a < stop:
+        w0, w1, (values, units, heads, stamps, src) = cols.window_of(a)
+        b = min(stop, w1)
+        i, j = a - w0, b - w0
         seq = seq0 + (a - start)
         conn.executemany(INSERT_VALUE, zip(
             repeat(lot_id), repeat(key.line), repeat(key.product), repeat(key.lot), range(seq, seq + (b - a)),
-            cols.value_list(a, b), cols.text_list("unit", a, b, default="g"), repeat(density),
-            cols.text_list("head", a, b), cols.time_list(a, b), repeat(file_id),
-            cols.source_lines[a:b].tolist()))
+            values[i:j], units[i:j], repeat(density), heads[i:j], stamps[i:j], repeat(file_id), src[i:j]))
+        a = b
 
 
 def lot_codes(rows: pd.DataFrame, n: int) -> tuple[np.ndarray, list[LotKey]]:
-    """A dense lot code per row (numbered by first appearance) and the ``LotKey`` of each code."""
+    """A lot code per row (equal codes, same lot) and the ``LotKey`` of each code.
+
+    Each of line / product / lot is factorized; the three codes are combined pairwise (so numbers stay
+    below n * n) with ``numpy.unique``. A column with one text is a zero code, at no cost.
+    """
     if n == 0:
         return np.empty(0, dtype=np.int64), []
     parts = [text_codes(rows, col, n) for col in ("line", "product", "lot")]
-    combined = parts[0][0]
-    for codes, names in parts[1:]:  # pairwise, so the combined number stays below n * n
-        combined = pd.factorize(combined * max(len(names), 1) + codes)[0]
+    combined: np.ndarray | None = None
+    for codes, names in parts:
+        if codes is None:
+            continue
+        if combined is None:
+            combined = codes
+        else:
+            combined = np.unique(combined * len(names) + codes, return_inverse=True)[1].reshape(-1)
+    if combined is None:
+        return np.zeros(n, dtype=np.int64), [LotKey(*(names[0] for _c, names in parts))]
     _, first = np.unique(combined, return_index=True)
-    keys = [LotKey(*(names[codes[i]] for codes, names in parts)) for i in first.tolist()]
+    keys = [LotKey(*(names[0] if codes is None else names[codes[i]] for codes, names in parts))
+            for i in first.tolist()]
     return combined.astype(np.int64, copy=False), keys
 
 
-def text_codes(df: pd.DataFrame, col: str, n: int) -> tuple[np.ndarray, list[str]]:
-    """A text column as (code per row, distinct cleaned texts); missing column or value -> ""."""
-    if col not in df.columns:
-        return np.zeros(n, dtype=np.int64), [""]
-    codes, uniques = pd.factorize(df[col], use_na_sentinel=True)
-    names = texts(pd.DataFrame({col: pd.Series(list(uniques) + [""], dtype=object)}), col, len(uniques) + 1)
-    codes = np.where(codes < 0, len(names) - 1, codes)
-    merged, distinct = pd.factorize(pd.Series(names, dtype=object))  # two raw texts may clean to the same
-    return merged[codes].astype(np.int64), [str(x) for x in distinct]
+def text_codes(df: pd.DataFrame, col: str, n: int) -> tuple[np.ndarray | None, list[str]]:
+    """A text column as (code per row, distinct texts); (None, [text]) when every row has one text.
+    A missing column or value is ""."""
+    arr = arrow_text(df, col, n, "")
+    distinct = pc.unique(arr)
+    if len(distinct) == 1:  # the usual export: one line / product / lot per file
+        return None, [str(distinct[0].as_py())]
+    codes = pc.index_in(arr, value_set=distinct)
+    codes = codes.combine_chunks() if isinstance(codes, pa.ChunkedArray) else codes
+    return codes.to_numpy(zero_copy_only=False).astype(np.int64), [str(x) for x in distinct.to_pylist()]
 
 
 def open_lot(conn: sqlite3.Connection, key: LotKey, at: str, ts: float, count: int, file_id: int) -> tuple[int, int]:
@@ -233,11 +288,18 @@ def close_idle_lots(conn: sqlite3.Connection, how: Judging, now: datetime,
 
 
 # -- reading the reader's frames ----------------------------------------------------------------
+DEFAULT_UNIT = "g"
+
+
 def texts(df: pd.DataFrame, col: str, n: int, default: str = "") -> list[str]:
     """A text column as Python strings (missing column or value -> ``default``)."""
     if col not in df.columns:
         return [default] * n
-    out = df[col].tolist()
+    return text_list(df[col].tolist(), default)
+
+
+def text_list(out: list[Any], default: str = "") -> list[str]:
+    """Python strings from a column's ``tolist()`` (missing value -> ``default``; the list is reused)."""
     for x in out:
         if not isinstance(x, str):  # rare: something missing or not text; clean the whole column
             return [default if (x is None or x is pd.NA or (isinstance(x, float) and x != x)) else str(x)
@@ -249,11 +311,25 @@ def times(df: pd.DataFrame, n: int) -> list[str | None]:
     """The timestamp column as ISO text (None where missing)."""
     if "timestamp" not in df.columns:
         return [None] * n
-    out = df["timestamp"].tolist()
+    return time_list(df["timestamp"].tolist())
+
+
+def time_list(out: list[Any]) -> list[str | None]:
+    """ISO text (None where missing) from a timestamp column's ``tolist()``."""
     if all(isinstance(x, str) for x in out):
         return out
     return [None if (x is None or x is pd.NaT or x is pd.NA or (isinstance(x, float) and x != x))
             else (x.isoformat() if hasattr(x, "isoformat") else str(x)) for x in out]
+
+
+def finite_list(values: np.ndarray) -> list[float | None]:
+    """Floats as a list; None for a non-finite value (stored as NULL)."""
+    finite = np.isfinite(values)
+    if finite.all():
+        return values.tolist()
+    out = values.astype(object)
+    out[~finite] = None
+    return out.tolist()
 
 
 def end_markers(export: Any) -> list[lots.Marker]:
