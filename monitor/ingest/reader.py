@@ -14,7 +14,8 @@ import pyarrow.compute as pc
 from monitor.errors import ExportError
 from monitor.ingest import convert
 from monitor.ingest.profile import CANONICAL_COLUMNS, DEFAULT_PROFILE, FeedProfile
-from monitor.ingest.table import FRAME_TEXT, TEXT, RawTable, split_body
+from monitor.ingest.frames import empty_frame, frame_of, repeat_text, str_array
+from monitor.ingest.table import TEXT, RawTable, split_body
 from monitor.ingest.text import Header, decode, find_header
 from monitor.units import ALLOWED as ALLOWED_UNITS
 from monitor.units import conversion_factor
@@ -23,7 +24,6 @@ ROW_COLUMNS = ("source_line", "lot", "value", "timestamp", "product", "line", "h
 SUMMARY_COLUMNS = ("source_line", "lot", "n", "mean", "sd", "product", "line", "unit", "timestamp")
 _MAX_N = 2**53  # the largest n that float64 holds exactly
 _GIVE_BACK_ROWS = 50_000
-SMALL_FRAME_ROWS = 10_000  # frames up to this many rows are built by _from_arrays (see _frame_of)
 
 
 @dataclass(frozen=True)
@@ -198,7 +198,7 @@ class _Rows:
         del lot
         self._release(keep=("lot", "product", "line", "head"))
         frame = self._frame(good, values, units, stamps, extra)
-        rows, summaries = (frame, _empty(SUMMARY_COLUMNS)) if self.kind == "values" else (_empty(ROW_COLUMNS), frame)
+        rows, summaries = (frame, empty_frame(SUMMARY_COLUMNS)) if self.kind == "values" else (empty_frame(ROW_COLUMNS), frame)
         return Export(path=self.name, kind=self.kind, rows=rows, summaries=summaries,  # type: ignore[arg-type]
                       bad_rows=bad_rows, dropped=int(dropped.sum()), end_of_lot=markers,
                       density=prof.density, profile=prof.name)
@@ -245,7 +245,7 @@ class _Rows:
 
     def _units(self) -> pa.ChunkedArray:
         if "unit" not in self.index:
-            return pa.repeat(pa.scalar(self.prof.unit, FRAME_TEXT), self.n)
+            return repeat_text(self.prof.unit, self.n)
         # parse_units strips each distinct spelling itself: no need to trim a million cells first
         units, unknown = convert.parse_units(self.columns[self.index["unit"]], self.prof.unit)  # type: ignore[arg-type]
         self.flag(unknown, "unit", f"unknown unit '{{v}}' — allowed: {ALLOWED_UNITS}")
@@ -268,7 +268,7 @@ class _Rows:
     def _timestamps(self) -> pa.ChunkedArray:
         t = self.text("timestamp")
         if t is None:
-            return pa.repeat(pa.scalar("", FRAME_TEXT), self.n)
+            return repeat_text("", self.n)
         try:
             stamps, bad = convert.parse_timestamps(t, self.prof.timestamp_format)
         except ValueError as exc:
@@ -347,8 +347,8 @@ class _Rows:
 
         def text(arr: pa.ChunkedArray | None) -> pd.api.extensions.ExtensionArray:
             if arr is None:
-                return _str_array(_repeat("", len(values) if every else int(good.sum())))
-            return _str_array(arr if mask is None else arr.filter(mask))
+                return str_array(repeat_text("", len(values) if every else int(good.sum())))
+            return str_array(arr if mask is None else arr.filter(mask))
 
         cols: dict[str, object] = {"source_line": self.lines if every else self.lines[good]}
         kept = ["lot", "product", "line", "head"]
@@ -368,51 +368,7 @@ class _Rows:
             cols["n"] = extra["n"] if every else extra["n"][good]
             cols["sd"] = extra["sd"] if every else extra["sd"][good]
             order = SUMMARY_COLUMNS
-        return _frame_of([cols[c] for c in order], order, int(good.sum()))
-
-
-_STR = pd.Series([], dtype="str").dtype  # pandas' default string dtype (pyarrow storage, NaN as missing)
-
-_COLUMN_INDEX = {cols: pd.Index(cols) for cols in (ROW_COLUMNS, SUMMARY_COLUMNS)}  # immutable: shared
-
-
-def _frame_of(arrays: list[object], columns: tuple[str, ...], n: int) -> pd.DataFrame:
-    """A frame over ``arrays`` (already of the documented dtypes and length ``n``).
-
-    For a small frame, pandas' ``DataFrame._from_arrays`` (when this pandas has it) skips the dict and
-    column-name handling that costs most of a small file's frame; it copies numeric arrays into 2-D
-    blocks, so a large frame takes the dict constructor, which keeps them without a copy.
-    """
-    index = pd.RangeIndex(n)
-    from_arrays = getattr(pd.DataFrame, "_from_arrays", None)
-    if from_arrays is not None and n <= SMALL_FRAME_ROWS:
-        try:
-            return from_arrays(arrays, columns=_COLUMN_INDEX[columns], index=index, verify_integrity=False)
-        except TypeError:  # another signature in another pandas version
-            pass
-    return pd.DataFrame(dict(zip(columns, arrays)), index=index, copy=False)
-
-
-def _str_array(arr: pa.ChunkedArray) -> pd.api.extensions.ExtensionArray:
-    """A pandas "str" array over ``arr`` (cast to large_string: new offsets, the same character data)."""
-    if arr.type != FRAME_TEXT:
-        arr = pc.cast(arr, FRAME_TEXT, memory_pool=pa.system_memory_pool())
-    return pd.arrays.ArrowStringArray(arr, dtype=_STR)
-
-
-def _repeat(text: str, n: int) -> pa.ChunkedArray:
-    return pa.chunked_array([pa.repeat(pa.scalar(text, FRAME_TEXT), n)], FRAME_TEXT)
-
-
-_EMPTY: dict[tuple[str, ...], pd.DataFrame] = {}
-
-
-def _empty(columns: tuple[str, ...]) -> pd.DataFrame:
-    """An empty frame with the documented dtypes: a copy of one built once (callers may change theirs)."""
-    if columns not in _EMPTY:
-        kinds = {"source_line": "int64", "value": "float64", "mean": "float64", "sd": "float64", "n": "int64"}
-        _EMPTY[columns] = pd.DataFrame({c: pd.Series([], dtype=kinds.get(c, "str")) for c in columns})
-    return _EMPTY[columns].copy(deep=False)  # copy-on-write: a change to one copy never reaches another
+        return frame_of([cols[c] for c in order], order, int(good.sum()))
 
 
 def _short(text: str, limit: int = 80) -> str:

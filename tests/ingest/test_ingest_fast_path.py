@@ -19,7 +19,7 @@ from hypothesis import strategies as st
 
 from monitor.errors import ExportError
 from monitor.ingest import Export, FeedProfile, read_export_bytes
-from monitor.ingest import reader, table
+from monitor.ingest import frames, table
 from monitor.ingest.profile import DEFAULT_PROFILE
 from monitor.ingest.text import decode, find_header
 
@@ -29,12 +29,12 @@ FUZZ = settings(max_examples=120, deadline=None, suppress_health_check=[HealthCh
 @contextmanager
 def general_path_only() -> Iterator[None]:
     """Every body goes to pyarrow's parser, and every frame to the dict constructor, while inside."""
-    saved = table.FAST_PATH_MAX_BYTES, reader.SMALL_FRAME_ROWS
-    table.FAST_PATH_MAX_BYTES, reader.SMALL_FRAME_ROWS = 0, -1
+    saved = table.FAST_PATH_MAX_BYTES, frames.SMALL_FRAME_ROWS
+    table.FAST_PATH_MAX_BYTES, frames.SMALL_FRAME_ROWS = 0, -1
     try:
         yield
     finally:
-        table.FAST_PATH_MAX_BYTES, reader.SMALL_FRAME_ROWS = saved
+        table.FAST_PATH_MAX_BYTES, frames.SMALL_FRAME_ROWS = saved
 
 
 def outcome(data: bytes, profile: FeedProfile | None) -> Export | ExportError:
