@@ -98,18 +98,16 @@ def parse_timestamps(text: pa.ChunkedArray, fmt: str | None) -> tuple[pa.Chunked
     cell is ISO 8601, pandas' format inference is tried. With ``fmt``: strptime, rewritten as ISO 8601.
     """
     n = len(text)
+    if n and fmt is None and _all_iso(text):  # the usual export: no cell empty (an empty cell fails the cast)
+        return _iso_t(text), np.zeros(n, bool)
     empty = pc.equal(pc.binary_length(text), 0).to_numpy(zero_copy_only=False)
     if n == 0 or empty.all():
         return pa.repeat(pa.scalar("", FRAME_TEXT), n), np.zeros(n, dtype=bool)
     if fmt is not None:
         return _formatted(_to_datetime(_series(text), format=fmt), empty)
-    try:  # fast path: Arrow's cast takes only ISO 8601 without a zone ("YYYY-MM-DD[ T]hh:mm:ss[.f]")
-        filled = text if not empty.any() else pc.if_else(pa.array(empty), pa.scalar("2000-01-01"), text)
-        pc.cast(filled, pa.timestamp("us"))
-        spaced = may_need_trim(text)  # no byte below 0x21 anywhere: no space to turn into "T"
-        return (pc.replace_substring(text, " ", "T", max_replacements=1) if spaced else text), np.zeros(n, bool)
-    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
-        pass
+    filled = text if not empty.any() else pc.if_else(pa.array(empty), pa.scalar("2000-01-01"), text)
+    if _all_iso(filled):  # ISO 8601 apart from empty cells
+        return _iso_t(text), np.zeros(n, bool)
     iso = pc.replace_substring_regex(text, _ISO_SPACE, r"\1T")
     parsed = _to_datetime(_series(iso), format="ISO8601", utc=True)
     shaped = pc.match_substring_regex(iso, _ISO_DATE).to_numpy(zero_copy_only=False)
@@ -119,6 +117,25 @@ def parse_timestamps(text: pa.ChunkedArray, fmt: str | None) -> tuple[pa.Chunked
         if inferred is not None:
             return _formatted(inferred, empty)
     return pc.if_else(pa.array(bad | empty), pa.scalar(""), iso), bad
+
+
+def _all_iso(text: pa.ChunkedArray) -> bool:
+    """True when Arrow's cast reads every cell: ISO 8601 without a zone ("YYYY-MM-DD[ T]hh:mm:ss[.f]").
+
+    Chunk by chunk, so a large column never has a timestamp copy of itself at once.
+    """
+    try:
+        for chunk in (text.chunks if isinstance(text, pa.ChunkedArray) else [text]):
+            pc.cast(chunk, pa.timestamp("us"))
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        return False
+    return True
+
+
+def _iso_t(text: pa.ChunkedArray) -> pa.ChunkedArray:
+    """ISO 8601 cells with "T" between date and time (the text itself when no cell has a space)."""
+    spaced = may_need_trim(text)  # no byte below 0x21 anywhere: no space to turn into "T"
+    return pc.replace_substring(text, " ", "T", max_replacements=1) if spaced else text
 
 
 def _inferred(cells: pd.Series) -> pd.Series | None:
