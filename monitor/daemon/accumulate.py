@@ -31,6 +31,7 @@ class Judging:
     rules: Sequence[Rule]
     evaluate: judge.Evaluator
     channels: tuple[str, ...]
+    recent: judge.RecentValues | None = None   # lots just stored, so closing them needs no read-back
 
 
 @dataclass
@@ -40,6 +41,7 @@ class Tally:
     verdicts: list[Verdict] = field(default_factory=list)
     alerts: list[str] = field(default_factory=list)
     closed: list[str] = field(default_factory=list)
+    opened: list[str] = field(default_factory=list)
 
 
 def lot_name(key: LotKey) -> str:
@@ -48,7 +50,8 @@ def lot_name(key: LotKey) -> str:
 
 
 def add_values(conn: sqlite3.Connection, how: Judging, file_id: int, export: Any, density: float | None,
-               now: datetime, tally: Tally, after_first_insert: Callable[[], None] = lambda: None) -> int:
+               now: datetime, tally: Tally, after_first_insert: Callable[[], None] = lambda: None, *,
+               path: str = "") -> int:
     """Append an export's rows to their lots and close / judge lots as the rows and markers say.
 
     Works from the frame's arrays: rows are grouped by (line, product, lot) with ``pandas.factorize`` and
@@ -72,7 +75,10 @@ def add_values(conn: sqlite3.Connection, how: Judging, file_id: int, export: Any
     for step in plan.steps:
         if isinstance(step, lots.Segment):
             lot_id, seq0 = open_lot(conn, step.key, at, ts, step.stop - step.start, file_id)
-            insert_values(conn, lot_id, step.key, seq0, cols, step.start, step.stop, density, file_id)
+            if seq0 == 1:
+                tally.opened.append(lot_name(step.key))
+            insert_values(conn, lot_id, step.key, seq0, cols, step.start, step.stop, density, file_id,
+                          how.recent if path else None, path)
             if first:
                 first = False
                 after_first_insert()
@@ -152,8 +158,10 @@ def arrow_text(df: pd.DataFrame, col: str, n: int, default: str | None) -> pa.Ar
 
 
 def insert_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, seq0: int, cols: RowColumns, start: int,
-                  stop: int, density: float | None, file_id: int) -> None:
-    """Insert rows ``start:stop`` (one lot) with seq from ``seq0``: one executemany per window they touch."""
+                  stop: int, density: float | None, file_id: int, recent: judge.RecentValues | None = None,
+                  path: str = "") -> None:
+    """Insert rows ``start:stop`` (one lot) with seq from ``seq0``: one executemany per window they touch;
+    ``recent`` (if given) keeps them for judging the lot without reading it back."""
     a = start
     while a < stop:
         w0, w1, (values, units, heads, stamps, src) = cols.window_of(a)
@@ -163,6 +171,8 @@ def insert_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, seq0: int,
         conn.executemany(INSERT_VALUE, zip(
             repeat(lot_id), repeat(key.line), repeat(key.product), repeat(key.lot), range(seq, seq + (b - a)),
             values[i:j], units[i:j], repeat(density), heads[i:j], stamps[i:j], repeat(file_id), src[i:j]))
+        if recent is not None:
+            recent.add(lot_id, seq, cols.values[a:b], heads[i:j], units[i:j], density, file_id, path)
         a = b
 
 
@@ -210,8 +220,7 @@ def open_lot(conn: sqlite3.Connection, key: LotKey, at: str, ts: float, count: i
     if row is None:
         cur = conn.execute("INSERT INTO lots(line, product, lot, state, opened_at, last_value_at, last_value_ts, n)"
                            " VALUES (?,?,?,'open',?,?,?,?)", (key.line, key.product, key.lot, at, at, ts, count))
-        Store.audit(conn, at, "lot-opened", file_id=file_id, line=key.line, product=key.product, lot=key.lot)
-        return int(cur.lastrowid), 1
+        return int(cur.lastrowid), 1  # the file-taken audit record names the lots it opened
     lot_id, state, n = row
     if state == "closed":
         conn.execute("UPDATE lots SET state='open', closed_at=NULL, close_reason=NULL, late_values=late_values+?"
@@ -227,17 +236,18 @@ def open_lot(conn: sqlite3.Connection, key: LotKey, at: str, ts: float, count: i
 def close_lot(conn: sqlite3.Connection, how: Judging, key: LotKey, reason: str, at: str, file_id: int | None,
               tally: Tally) -> Verdict | None:
     """Close an open lot and judge it: verdict row, audit and alert on ``conn``. None if it was not open."""
-    row = conn.execute("SELECT id FROM lots WHERE line=? AND product=? AND lot=? AND state='open'",
+    row = conn.execute("SELECT id, n FROM lots WHERE line=? AND product=? AND lot=? AND state='open'",
                        (key.line, key.product, key.lot)).fetchone()
     if row is None:
         return None
-    lot_id = int(row[0])
+    lot_id, n = int(row[0]), int(row[1])
     conn.execute("UPDATE lots SET state='closed', closed_at=?, close_reason=?, times_closed=times_closed+1"
                  " WHERE id=?", (at, reason, lot_id))
-    Store.audit(conn, at, "lot-closed", file_id=file_id, line=key.line, product=key.product, lot=key.lot,
-                detail={"reason": reason})
+    # the verdict's audit record (close_reason, file) is the closing's record
     rule = match_rule(list(how.rules), key.product)
-    data, problem = judge.load_lot_values(conn, lot_id, key, rule)
+    recent = how.recent.take(lot_id, n) if how.recent is not None else None
+    data, problem = (recent.lot_data(key, rule) if recent is not None
+                     else judge.load_lot_values(conn, lot_id, key, rule))
     verdict = judge.judge(data, rule, problem, how.evaluate)
     alert = judge.record_verdict(conn, verdict, rule, data, at=at, channels=how.channels, lot_id=lot_id,
                                  close_reason=reason, file_id=file_id)

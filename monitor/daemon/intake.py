@@ -4,7 +4,9 @@ A batch of files (one file for ``process``) goes through two short write transac
 (``BEGIN IMMEDIATE`` each):
 
 1. *mark* — each file is known by the SHA-256 of its bytes; content already done is a duplicate (marked and
-   alerted here); otherwise a ``processing`` row is written, which ``recover`` retries after a crash.
+   alerted here); otherwise a ``processing`` row is written, which ``recover`` retries after a crash. This
+   commit does not wait for the disk (a lost 'processing' mark only means the file is taken from the drop
+   folder again); when it marked a duplicate, ``Store.sync`` makes it durable before the file moves.
 2. *done* — for each file in order: values, lot openings and closings, verdicts, audit records and every
    alert they raise (outbox), with the file's done / rejected mark and its planned archive path. All or
    nothing: a crash rolls the whole batch back and the files, still in the drop folder, are retried.
@@ -128,6 +130,7 @@ class Intake:
         self._calls = 0
         self._moved: list[tuple[str, str, int]] = []  # moves done, recorded with the next write transaction
         self._crash = _parse_crash(os.environ.get(CRASH_ENV, ""))
+        self._recent = judge.RecentValues()
 
     # -- reloads -------------------------------------------------------------------------------
     def set_rules(self, rules: Sequence[Rule]) -> None:
@@ -161,9 +164,13 @@ class Intake:
             now = self.clock()
             live = [it for it in items if it.outcome is None]
             if live:
-                with self._write() as conn:
+                # marks need not wait for the disk: a mark lost to a power cut leaves the file in the drop
+                # folder, taken again; a duplicate's mark that is lost is found again as a duplicate
+                with self._write(durable=False) as conn:
                     for it in live:
                         self._mark(conn, it, now)
+                if any(it.outcome is not None and it.outcome.status == "duplicate" for it in live):
+                    self.store.sync()  # a duplicate's row and alert must outlive a power cut before it moves
             for it in live:
                 if it.outcome is None:
                     self._maybe_crash("after-mark", it.call)
@@ -263,6 +270,7 @@ class Intake:
                         self._take(conn, it, now, at)
                 except Exception as exc:  # a bug of ours on this file: undo its part, keep it safe, tell people
                     conn.execute("ROLLBACK TO one_file")
+                    self._recent.clear()
                     log.exception("intake failed on %s; quarantining it", it.path)
                     it.error = (f"lotwarden failed on this file ({type(exc).__name__}: {exc}); it is kept in"
                                 " quarantine for a person to look at", None)
@@ -297,7 +305,7 @@ class Intake:
             n_values = accumulate.add_summaries(conn, how, file_id, str(it.path), export, density, at, tally)
         else:
             n_values = accumulate.add_values(conn, how, file_id, export, density, now, tally,
-                                             lambda: self._maybe_crash("mid-values", it.call))
+                                             lambda: self._maybe_crash("mid-values", it.call), path=str(it.path))
         target = self._plan_target(conn, self.config.state.archive, it.path.name, now)
         n_bad = len(getattr(export, "bad_rows", ()) or ())
         conn.execute("UPDATE files SET state='done', processed_at=?, archived_path=?, kind=?, n_values=?,"
@@ -305,7 +313,7 @@ class Intake:
         Store.audit(conn, at, "file-taken", file_id=file_id,
                     detail={"path": str(it.path), "sha256": it.sha, "kind": kind, "values": n_values,
                             "bad_rows": n_bad, "profile": getattr(it.profile, "name", None),
-                            "archived_path": str(target)})
+                            "archived_path": str(target), "lots_opened": tally.opened})
         it.outcome = FileOutcome(str(it.path), status, file_id=file_id, sha256=it.sha, n_values=n_values,
                                  lots_closed=tuple(tally.closed), verdicts=tuple(tally.verdicts),
                                  alerts=tuple(tally.alerts), kind=kind)
@@ -360,13 +368,18 @@ class Intake:
         return str(final)
 
     @contextmanager
-    def _write(self) -> Iterator[sqlite3.Connection]:
-        """A write transaction that also records the archive moves done since the last one."""
+    def _write(self, *, durable: bool = True) -> Iterator[sqlite3.Connection]:
+        """A write transaction that also records the archive moves done since the last one (a move not
+        recorded is found again by ``recover``, so ``durable=False`` is safe for those too)."""
         pending = list(self._moved)
-        with self.store.write() as conn:
-            if pending:
-                conn.executemany("UPDATE files SET archived_at=?, archived_path=? WHERE id=?", pending)
-            yield conn
+        try:
+            with self.store.write(durable=durable) as conn:
+                if pending:
+                    conn.executemany("UPDATE files SET archived_at=?, archived_path=? WHERE id=?", pending)
+                yield conn
+        except BaseException:
+            self._recent.clear()  # rolled back: what it stored is gone
+            raise
         del self._moved[:len(pending)]
 
     def flush(self) -> None:
@@ -461,7 +474,8 @@ class Intake:
     # -- helpers -------------------------------------------------------------------------------
     def _judging(self) -> Judging:
         evaluate = self._evaluate if self._evaluate is not None else self._engine.evaluate
-        return Judging(rules=tuple(self.rules), evaluate=evaluate, channels=tuple(self.config.alerts.channels))
+        return Judging(rules=tuple(self.rules), evaluate=evaluate, channels=tuple(self.config.alerts.channels),
+                       recent=self._recent)
 
     def _maybe_crash(self, point: str, call: int) -> None:
         if self._crash is not None and self._crash == (point, call):

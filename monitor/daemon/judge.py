@@ -32,6 +32,8 @@ def no_rule_reason(product: str) -> str:
 
 
 FETCH_ROWS = 50_000
+RECENT_VALUES_MAX = 200_000   # values kept in memory over all recent lots (a few MB)
+RECENT_LOT_MAX = 10_000       # a lot longer than this is read back from the store when it closes
 
 
 def load_lot_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, rule: Rule | None
@@ -47,19 +49,8 @@ def load_lot_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, rule: Ru
     files = tuple(r[0] for r in conn.execute(
         "SELECT f.path FROM lot_values v JOIN files f ON f.id = v.file_id WHERE v.lot_id = ?"
         " GROUP BY v.file_id ORDER BY min(v.seq)", (lot_id,)))
-    problem = None
-    factor: dict[tuple[str, float | None], float] = {}
-    if rule is not None and rule.unit:
-        for u, d, _first in pairs:
-            try:
-                factor[(u, d)] = conversion_factor(u, rule.unit, d)
-            except ValueError as exc:
-                factor[(u, d)] = math.nan
-                problem = problem or f"values in {u!r} cannot be judged in {rule.unit}: {exc}"
-    convert = rule is not None and bool(rule.unit) and problem is None
-    unit = rule.unit if convert else (pairs[0][0] if pairs else (rule.unit if rule else "g"))
-    one_factor = factor[(pairs[0][0], pairs[0][1])] if convert and len(pairs) == 1 else None
-    per_row = convert and len(pairs) > 1
+    factor, problem = unit_factors([(u, d) for u, d, _first in pairs], rule)
+    per_row = problem is None and len(pairs) > 1 and bool(factor)
     cols = "value, head, unit, density" if per_row else "value, head"
     cur = conn.execute(f"SELECT {cols} FROM lot_values WHERE lot_id = ? ORDER BY seq", (lot_id,))
     chunks: list[np.ndarray] = []
@@ -77,11 +68,112 @@ def load_lot_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, rule: Ru
         del rows
     values = np.concatenate(chunks) if chunks else np.empty(0, dtype=np.float64)
     del chunks
-    if one_factor is not None and one_factor != 1.0:
-        values *= one_factor
-    named = any(shared)  # some value names its head
-    return LotData(key=key, values=values, heads=tuple(heads) if named else None, files=files,
+    return lot_data(key, values, heads if any(shared) else None, [(u, d) for u, d, _f in pairs], files, rule,
+                    converted=per_row)
+
+
+def unit_factors(pairs: Sequence[tuple[str, float | None]], rule: Rule | None
+                 ) -> tuple[dict[tuple[str, float | None], float], str | None]:
+    """Factor from each (unit, density) to the rule's unit, and the first conversion problem (or None).
+    No factors when the rule names no unit."""
+    factor: dict[tuple[str, float | None], float] = {}
+    problem = None
+    if rule is not None and rule.unit:
+        for u, d in pairs:
+            try:
+                factor[(u, d)] = conversion_factor(u, rule.unit, d)
+            except ValueError as exc:
+                factor[(u, d)] = math.nan
+                problem = problem or f"values in {u!r} cannot be judged in {rule.unit}: {exc}"
+    return factor, problem
+
+
+def lot_data(key: LotKey, values: np.ndarray, heads: Sequence[str] | None,
+             pairs: Sequence[tuple[str, float | None]], files: tuple[str, ...], rule: Rule | None, *,
+             converted: bool = False) -> tuple[LotData, str | None]:
+    """LotData in the rule's unit from stored values whose (unit, density) pairs are ``pairs`` in order of
+    first use; with one pair the whole array is scaled here (``converted``: the caller did it per row)."""
+    factor, problem = unit_factors(pairs, rule)
+    if problem is None and factor:
+        if not converted and len(pairs) == 1:
+            f = factor[(pairs[0][0], pairs[0][1])]
+            if f != 1.0:
+                values = values * f
+        unit = rule.unit if rule is not None else "g"
+    else:
+        unit = pairs[0][0] if pairs else (rule.unit if rule else "g")
+    return LotData(key=key, values=values, heads=tuple(heads) if heads is not None else None, files=files,
                    unit=unit), problem
+
+
+class RecentValues:
+    """The values of lots this intake has just stored, so closing such a lot needs no read-back.
+
+    An entry holds a lot's whole history (started at seq 1, every later segment appended) and is used
+    only when its count equals the lot's ``n`` in the store; anything else (a rolled-back file, a lot
+    longer than ``RECENT_LOT_MAX``, mixed units) falls back to ``load_lot_values``. Memory is bounded by
+    ``RECENT_VALUES_MAX`` values; the oldest entries go first.
+    """
+
+    def __init__(self) -> None:
+        self.lots: dict[int, _Recent] = {}
+        self.size = 0
+
+    def add(self, lot_id: int, seq0: int, values: np.ndarray, heads: list[str], units: list[str],
+            density: float | None, file_id: int, path: str) -> None:
+        """Rows just inserted for ``lot_id`` from ``seq0``: values as read (non-finite are stored as NULL)."""
+        entry = self.lots.pop(lot_id, None)
+        if entry is not None:
+            self.size -= entry.n
+        if seq0 == 1:
+            entry = _Recent()
+        if entry is None or entry.n != seq0 - 1 or entry.n + len(values) > RECENT_LOT_MAX or not units:
+            return
+        pair = (units[0], density)
+        if units.count(units[0]) != len(units) or (entry.pairs and entry.pairs[0] != pair):
+            return  # mixed units: the store's per-row conversion handles those
+        entry.pairs = [pair]
+        entry.values.append(np.where(np.isfinite(values), values, np.nan))
+        entry.heads.extend(heads)
+        if file_id not in entry.file_ids:
+            entry.file_ids.append(file_id)
+            entry.files.append(path)
+        entry.n += len(values)
+        self.lots[lot_id] = entry
+        self.size += entry.n
+        while self.size > RECENT_VALUES_MAX and self.lots:
+            old = next(iter(self.lots))
+            self.size -= self.lots.pop(old).n
+
+    def take(self, lot_id: int, n: int) -> _Recent | None:
+        """The entry of a closing lot if it holds exactly the ``n`` stored values; it leaves the cache."""
+        entry = self.lots.pop(lot_id, None)
+        if entry is None:
+            return None
+        self.size -= entry.n
+        return entry if entry.n == n else None
+
+    def clear(self) -> None:
+        """Forget everything (a transaction or savepoint was rolled back)."""
+        self.lots.clear()
+        self.size = 0
+
+
+class _Recent:
+    """One lot's recent values (internal to ``RecentValues``)."""
+
+    def __init__(self) -> None:
+        self.n = 0
+        self.values: list[np.ndarray] = []
+        self.heads: list[str] = []
+        self.pairs: list[tuple[str, float | None]] = []
+        self.files: list[str] = []
+        self.file_ids: list[int] = []
+
+    def lot_data(self, key: LotKey, rule: Rule | None) -> tuple[LotData, str | None]:
+        """The same LotData ``load_lot_values`` would read from the store."""
+        values = np.concatenate(self.values) if self.values else np.empty(0, dtype=np.float64)
+        return lot_data(key, values, self.heads if any(self.heads) else None, self.pairs, tuple(self.files), rule)
 
 
 def summary_lot(key: LotKey, n: int, mean: float, sd: float, unit: str, density: float | None,

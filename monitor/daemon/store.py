@@ -179,16 +179,35 @@ class Store:
         return store
 
     @contextmanager
-    def write(self) -> Iterator[sqlite3.Connection]:
-        """``with store.write() as conn:`` — one BEGIN IMMEDIATE … COMMIT; ROLLBACK if the block raises."""
+    def write(self, *, durable: bool = True) -> Iterator[sqlite3.Connection]:
+        """``with store.write() as conn:`` — one BEGIN IMMEDIATE … COMMIT; ROLLBACK if the block raises.
+
+        ``durable=False`` commits without waiting for the disk (``synchronous=NORMAL`` for this one
+        transaction): it survives a killed process but may be lost with a power cut, together with nothing
+        after it. Only for records whose loss is harmless (e.g. a file marked 'processing', which is then
+        simply found again in the drop folder); the next durable commit makes it durable too.
+        """
         with self.lock:
-            self.conn.execute("BEGIN IMMEDIATE")
+            if not durable:
+                self.conn.execute("PRAGMA synchronous = NORMAL")
             try:
-                yield self.conn
-            except BaseException:
-                self.conn.execute("ROLLBACK")
-                raise
-            self.conn.execute("COMMIT")
+                self.conn.execute("BEGIN IMMEDIATE")
+                try:
+                    yield self.conn
+                except BaseException:
+                    self.conn.execute("ROLLBACK")
+                    raise
+                self.conn.execute("COMMIT")
+            finally:
+                if not durable:
+                    self.conn.execute("PRAGMA synchronous = FULL")
+
+    def sync(self) -> None:
+        """Make every commit so far durable: one small durable transaction, whose WAL sync covers the
+        frames of the non-durable commits before it."""
+        with self.write() as conn:
+            conn.execute("INSERT OR REPLACE INTO meta(key, value) VALUES ('synced_at', ?)",
+                         (utc_iso(datetime.now(timezone.utc)),))
 
     @contextmanager
     def read(self) -> Iterator[sqlite3.Connection]:
