@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import json
+import statistics
 from pathlib import Path
 
 import pytest
@@ -231,3 +232,7 @@ def test_an_internal_failure_on_one_file_spares_the_batch(intake_env, monkeypatc
     assert store.conn.execute("SELECT n FROM lots").fetchone() == (3,)
     assert (cfg.state.quarantine / "2026-11-30" / "2.csv").exists()
     assert count(store, "SELECT count(*) FROM alerts WHERE kind='file-rejected'") == 1
+    # the lot, closed now, is judged over the three values that were kept (mean by the standard library)
+    write_export(drop, "4.csv", oat("OAT-24A102", [500.0]))
+    (v,) = intake.process(drop / "4.csv").verdicts
+    assert v.n == 3 and v.mean == pytest.approx(statistics.fmean([500.0, 501.0, 504.0]), rel=1e-12)

@@ -198,3 +198,79 @@ def test_rule_reload_applies_to_lots_closed_afterwards(intake_env) -> None:
     intake.set_rules([r if r.name != "oat-500" else new_rule for r in intake.rules])
     (v,) = intake.close_idle(idle_seconds_override=0)
     assert store.conn.execute("SELECT rule_version FROM verdicts").fetchone() == ("f" * 12,)
+
+
+def csv_groups(path: Path) -> dict[tuple[str, str, str], list[tuple[float, int]]]:
+    """(line, product, lot) -> [(value, file line)] in file order, read with Python's csv module."""
+    out: dict[tuple[str, str, str], list[tuple[float, int]]] = {}
+    with open(path, newline="", encoding="utf-8") as fh:
+        for i, r in enumerate(csv.DictReader(fh)):
+            out.setdefault((r["line"], r["product"], r["lot"]), []).append((float(r["value"]), i + 2))
+    return out
+
+
+def test_values_across_insert_windows_keep_their_lot_and_order(intake_env, monkeypatch) -> None:
+    """With a 7-row insert window and 5-row fetches, interleaved lots on two lines keep every value, in
+    order, with its file line; each lot's seq runs 1..n."""
+    from monitor.daemon import accumulate, judge
+
+    monkeypatch.setattr(accumulate, "CHUNK_ROWS", 7)  # a smaller setting, so windows split segments
+    monkeypatch.setattr(judge, "FETCH_ROWS", 5)
+    cfg, store, intake, drop = intake_env
+    rows = []
+    for i in range(10):
+        rows += oat("OAT-24A301", [500.0 + i / 10])
+        rows.append(("L2", "JAM-340", "J-5530", 340.0 + i / 10, "g"))
+    rows += oat("OAT-24A302", [501.0 + i / 10 for i in range(13)])
+    f = write_export(drop, "L1-L2-mixed.csv", rows)
+    expected = csv_groups(f)  # read before intake moves the file to the archive
+    out = intake.process(f)
+    assert out.status == "taken" and out.n_values == len(rows)
+    assert out.lots_closed == ("L1/OAT-500/OAT-24A301",)
+    got: dict[tuple[str, str, str], list[tuple[float, int]]] = {}
+    for line, product, lot, seq, value, src in store.conn.execute(
+            "SELECT line, product, lot, seq, value, source_line FROM lot_values ORDER BY lot_id, seq"):
+        got.setdefault((line, product, lot), []).append((value, src))
+        assert seq == len(got[(line, product, lot)])
+    assert got == expected
+    # the closed lot was judged over its ten values: mean as computed by the standard library
+    assert out.verdicts[0].n == 10
+    assert out.verdicts[0].mean == pytest.approx(statistics.fmean(500.0 + i / 10 for i in range(10)), rel=1e-12)
+
+
+@pytest.mark.parametrize("recent_max", [10_000, 3])
+def test_a_lot_closed_in_the_same_batch_is_judged_like_scipy(intake_env, monkeypatch, engine_ready: bool,
+                                                             recent_max: int) -> None:
+    """A lot stored and closed within one batch (from memory, or read back when longer than the memory
+    limit) gets the t statistic and p-value of scipy.stats.ttest_1samp and names its files in order."""
+    if not engine_ready:
+        pytest.skip("monitor.engine.evaluate is not implemented yet")
+    from monitor.daemon import judge
+
+    monkeypatch.setattr(judge, "RECENT_LOT_MAX", recent_max)
+    cfg, store, intake, drop = intake_env
+    f1 = write_export(drop, "1-a.csv", oat("OAT-24A101", A_VALUES_1))
+    f2 = write_export(drop, "2-a.csv", oat("OAT-24A101", A_VALUES_2))
+    f3 = write_export(drop, "3-b.csv", oat("OAT-24A102", [500.0, 500.1]))
+    values = csv_values(f1) + csv_values(f2)
+    outs = intake.process_batch([f1, f2, f3])
+    (v,) = outs[2].verdicts
+    ref = scipy.stats.ttest_1samp(values, 500.0)  # reference: scipy.stats.ttest_1samp, two-sided
+    assert v.n == len(values)
+    assert v.statistic == pytest.approx(ref.statistic, rel=1e-9)
+    assert v.p_value == pytest.approx(ref.pvalue, rel=1e-9)
+    assert v.files == (str(f1), str(f2))
+    assert {h.head for h in v.heads} == {"H1", "H2", "H3", "H4"}  # written by write_export
+
+
+def test_mixed_units_in_one_lot_are_converted_row_by_row(intake_env) -> None:
+    """A lot with values in g and in kg is judged in the rule's g, each value converted by its own unit."""
+    cfg, store, intake, drop = intake_env
+    rows = [("L1", "OAT-500", "OAT-24A401", 500.2, "g"), ("L1", "OAT-500", "OAT-24A401", 0.5011, "kg"),
+            ("L1", "OAT-500", "OAT-24A401", 499.7, "g"), ("L1", "OAT-500", "OAT-24A401", 0.5003, "kg"),
+            ("L1", "OAT-500", "OAT-24A401", 500.9, "g")]
+    intake.process(write_export(drop, "L1-units.csv", rows))
+    (v,) = intake.close_idle(idle_seconds_override=0)
+    assert v.unit == "g" and v.n == 5
+    # 1 kg = 1000 g (SI; NIST SP 811)
+    assert v.mean == pytest.approx(statistics.fmean([500.2, 501.1, 499.7, 500.3, 500.9]), rel=1e-12)

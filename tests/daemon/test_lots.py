@@ -94,3 +94,40 @@ def test_every_row_is_in_exactly_one_segment(keys: list[LotKey], marker_lines: l
         assert all(keys[i] == s.key for i in range(s.start, s.stop))
     for line, key in plan.open_after.items():
         assert key.line == line
+
+
+@settings(max_examples=100, deadline=None)
+@given(keys_st)
+def test_runs_from_codes_match_groupby(keys: list[LotKey]) -> None:
+    """runs_of_codes over numeric codes gives the same runs as itertools.groupby over the keys."""
+    import itertools
+
+    import numpy as np
+
+    from monitor.daemon.lots import runs_of_codes
+
+    distinct = list(dict.fromkeys(keys))
+    codes = np.array([distinct.index(k) for k in keys], dtype=np.int64)
+    expected, pos = [], 0
+    for key, group in itertools.groupby(keys):  # reference: the standard library's grouping of equal neighbours
+        size = len(list(group))
+        expected.append(Segment(key, pos, pos + size))
+        pos += size
+    assert runs_of_codes(codes, distinct) == expected
+
+
+@settings(max_examples=100, deadline=None)
+@given(keys_st, st.lists(st.integers(0, 45), max_size=4))
+def test_markers_split_runs_with_array_source_lines(keys: list[LotKey], marker_lines: list[int]) -> None:
+    """With numpy source lines a marker between rows r and r+1 of one lot ends a segment exactly at r+1."""
+    import numpy as np
+
+    src = np.array([2 * i + 2 for i in range(len(keys))], dtype=np.int64)
+    markers = [Marker(2 * m + 1, lot=None) for m in marker_lines]
+    plan = plan_file({}, find_runs(keys), src, markers)
+    covered = [i for s in plan.segments for i in range(s.start, s.stop)]
+    assert covered == list(range(len(keys)))
+    # a marker on line 2m+1 falls between rows m-1 and m: no segment may span that gap
+    cuts = {m for m in marker_lines if 0 < m < len(keys)}
+    for s in plan.segments:
+        assert not any(s.start < c < s.stop for c in cuts)

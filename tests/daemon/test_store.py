@@ -105,3 +105,26 @@ def test_utc_iso_needs_an_aware_time() -> None:
     with pytest.raises(ValueError):
         utc_iso(datetime(2026, 12, 1, 6, 0))
     assert utc_iso(datetime(2026, 12, 1, 6, 0, tzinfo=timezone.utc)) == "2026-12-01T06:00:00+00:00"
+
+
+def test_a_non_durable_write_commits_and_full_sync_comes_back(tmp_path: Path) -> None:
+    """write(durable=False) commits (seen by a second connection) and leaves synchronous at FULL; sync()
+    is a durable commit of its own."""
+    with Store.open(tmp_path) as store:
+        with store.write(durable=False) as conn:
+            conn.execute("INSERT INTO meta(key, value) VALUES ('probe', 'x')")
+        # SQLite docs, "PRAGMA synchronous": 2 = FULL
+        assert store.conn.execute("PRAGMA synchronous").fetchone()[0] == 2
+        other = sqlite3.connect(str(tmp_path / DB_NAME))
+        try:
+            assert other.execute("SELECT value FROM meta WHERE key='probe'").fetchone() == ("x",)
+        finally:
+            other.close()
+        with pytest.raises(RuntimeError):
+            with store.write(durable=False) as conn:
+                conn.execute("INSERT INTO meta(key, value) VALUES ('gone', 'y')")
+                raise RuntimeError("rolled back")
+        assert store.conn.execute("PRAGMA synchronous").fetchone()[0] == 2
+        assert store.conn.execute("SELECT count(*) FROM meta WHERE key='gone'").fetchone()[0] == 0
+        store.sync()
+        assert store.conn.execute("SELECT count(*) FROM meta WHERE key='synced_at'").fetchone()[0] == 1
