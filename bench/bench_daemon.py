@@ -162,7 +162,9 @@ def bench_idle_cpu(root: Path, seconds: float) -> float:
     return pct
 
 
-def bench_memory(root: Path, rows: int) -> tuple[float, float]:
+def bench_memory(root: Path, rows: int, judge: bool = False) -> tuple[float, float]:
+    """Peak RSS of the daemon taking one export of ``rows`` values of one lot; with ``judge`` the export
+    ends with an end-of-lot row, so the million-value lot is also read back and judged in the same run."""
     cfg = make_plant(root)
     p = start(cfg, root / "daemon.log")
     try:
@@ -170,7 +172,8 @@ def bench_memory(root: Path, rows: int) -> tuple[float, float]:
         idle_peak = peak_rss_mb(p.pid)
         rng = np.random.default_rng(11)
         vals = np.round(rng.normal(500.0, 1.2, rows), 1)
-        big = root / "big.csv.part"
+        name = "bench-big.csv" if judge else "big.csv"   # bench-*.csv: the profile with end-of-lot rows
+        big = root / (name + ".part")
         with open(big, "w") as fh:
             fh.write(HEADER)
             chunk = 100_000
@@ -178,8 +181,11 @@ def bench_memory(root: Path, rows: int) -> tuple[float, float]:
                 part = vals[s:s + chunk]
                 fh.write("".join(f"2026-11-30T06:00:00,L1,OAT-500,M1,H{k % 8 + 1},{v},g\n"
                                  for k, v in enumerate(part, start=s)))
+            if judge:
+                fh.write("2026-11-30T06:00:59,L1,OAT-500,END,,,g\n")
+        del vals
         t0 = time.monotonic()
-        os.replace(big, root / "drop" / "big.csv")
+        os.replace(big, root / "drop" / name)
         db = root / "state" / "lotwarden.db"
         import sqlite3
         deadline = time.monotonic() + 600
@@ -195,7 +201,8 @@ def bench_memory(root: Path, rows: int) -> tuple[float, float]:
         peak = peak_rss_mb(p.pid)
     finally:
         stop(p)
-    print(f"peak memory taking a {rows:,}-row export: {peak:.0f} MB (idle daemon peak {idle_peak:.0f} MB, "
+    what = "taking and judging" if judge else "taking"
+    print(f"peak memory {what} a {rows:,}-row export: {peak:.0f} MB (idle daemon peak {idle_peak:.0f} MB, "
           f"ratio {peak / idle_peak:.1f}x; must be < 500 MB); took {took:.1f} s")
     return peak, idle_peak
 
@@ -209,6 +216,7 @@ def main() -> int:
         bench_latency(root / "latency", 10 if args.quick else 50)
         bench_idle_cpu(root / "idle", 5 if args.quick else 20)
         bench_memory(root / "memory", 200_000 if args.quick else 1_000_000)
+        bench_memory(root / "memory-judged", 200_000 if args.quick else 1_000_000, judge=True)
     return 0
 
 

@@ -54,9 +54,9 @@ def add_values(conn: sqlite3.Connection, how: Judging, file_id: int, export: Any
                path: str = "") -> int:
     """Append an export's rows to their lots and close / judge lots as the rows and markers say.
 
-    Works from the frame's arrays: rows are grouped by (line, product, lot) with ``pandas.factorize`` and
-    inserted segment by segment in chunks of ``CHUNK_ROWS``, so no per-row Python object lives for the
-    whole file at once.
+    Works from the frame's arrays: rows are grouped by (line, product, lot) codes (``lot_codes``) and
+    inserted segment by segment in windows of ``CHUNK_ROWS`` rows, so no per-row Python object lives for
+    the whole file at once.
     """
     rows: pd.DataFrame = export.rows
     n = len(rows)
@@ -148,9 +148,8 @@ def arrow_text(df: pd.DataFrame, col: str, n: int, default: str | None) -> pa.Ar
     except (pa.ArrowException, TypeError, ValueError):
         arr = None
     if arr is None or not (pa.types.is_string(arr.type) or pa.types.is_large_string(arr.type)):
-        cleaned: list[Any] = text_list(ser.tolist(), "") if default is not None else time_list(ser.tolist())
-        if default is not None and default != "":
-            cleaned = [x if x != "" or y is not None else default for x, y in zip(cleaned, ser.tolist())]
+        # not text in Arrow already (objects, numbers, datetimes): clean through Python, as before
+        cleaned = text_list(ser.tolist(), default) if default is not None else time_list(ser.tolist())
         arr = pa.array(cleaned, type=pa.large_string())
     if default is not None and arr.null_count:
         arr = pc.fill_null(arr, default)
@@ -204,6 +203,8 @@ def lot_codes(rows: pd.DataFrame, n: int) -> tuple[np.ndarray, list[LotKey]]:
 def text_codes(df: pd.DataFrame, col: str, n: int) -> tuple[np.ndarray | None, list[str]]:
     """A text column as (code per row, distinct texts); (None, [text]) when every row has one text.
     A missing column or value is ""."""
+    if col not in df.columns:
+        return None, [""]
     arr = arrow_text(df, col, n, "")
     distinct = pc.unique(arr)
     if len(distinct) == 1:  # the usual export: one line / product / lot per file

@@ -274,3 +274,26 @@ def test_mixed_units_in_one_lot_are_converted_row_by_row(intake_env) -> None:
     assert v.unit == "g" and v.n == 5
     # 1 kg = 1000 g (SI; NIST SP 811)
     assert v.mean == pytest.approx(statistics.fmean([500.2, 501.1, 499.7, 500.3, 500.9]), rel=1e-12)
+
+
+def test_lot_codes_from_arrow_text_object_columns_and_gaps() -> None:
+    """Rows get one code per (line, product, lot): Arrow-backed text, plain Python objects and missing
+    values ("" for a missing text, as the policy says) all give the same lots."""
+    import numpy as np
+    import pandas as pd
+
+    from monitor.daemon.accumulate import lot_codes
+    from monitor.lot import LotKey
+
+    lines = ["L1", "L1", "L2", "L1", None, "L1"]
+    prods = ["OAT-500"] * 6
+    lotcodes = ["A", "A", "A", "B", "A", "B"]
+    for dtype in ("str", object):
+        df = pd.DataFrame({"line": pd.Series(lines, dtype=dtype), "product": pd.Series(prods, dtype=dtype),
+                           "lot": pd.Series(lotcodes, dtype=dtype)})
+        codes, keys = lot_codes(df, 6)
+        got = [keys[c] for c in np.asarray(codes).tolist()]
+        assert got == [LotKey(ln or "", p, lt) for ln, p, lt in zip(lines, prods, lotcodes)]
+    # a frame without a line column is one line, ""; one lot in the whole file is one code
+    codes, keys = lot_codes(pd.DataFrame({"lot": pd.Series(["X1"] * 3, dtype="str")}), 3)
+    assert np.asarray(codes).tolist() == [0, 0, 0] and keys == [LotKey("", "", "X1")]
