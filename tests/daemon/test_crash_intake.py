@@ -22,12 +22,15 @@ DRIVER = textwrap.dedent("""
     from monitor.daemon.intake import Intake
     from monitor.daemon.store import Store
 
+    if len(sys.argv) > 2 and sys.argv[2].endswith("-w2"):  # two-row insert windows: a file is many inserts
+        from monitor.daemon import accumulate
+        accumulate.CHUNK_ROWS = 2
     cfg = load_config(sys.argv[1])
     store = Store.open(cfg.state.folder)
     intake = Intake(cfg, load_rule_set(cfg), store)
     intake.recover()
     ready = [p for p in sorted(cfg.watch.folder.iterdir()) if p.is_file() and cfg.watch.accepts(p.name)]
-    if len(sys.argv) > 2 and sys.argv[2] == "batch":
+    if len(sys.argv) > 2 and sys.argv[2].startswith("batch"):
         intake.process_batch(ready)
     else:
         for p in ready:
@@ -137,6 +140,8 @@ def make_setup_module():
     ["mid-values:7", "after-commit:1"],       # the last file rolled back; on restart committed, not moved
     ["batch", "mid-values:6", "after-archive:2"],  # one commit for all: the whole batch rolled back, then
                                                    # committed and the second file moved, not recorded
+    ["batch-w2", "mid-values:1", "after-commit:1"],  # two-row windows: killed after the first window of
+                                                     # the first file, then committed and not moved
 ])
 def test_sigkill_then_restart_loses_and_doubles_nothing(tmp_path: Path, make_setup_module, reference: dict,
                                                         crashes: list[str]) -> None:
@@ -145,8 +150,8 @@ def test_sigkill_then_restart_loses_and_doubles_nothing(tmp_path: Path, make_set
     files = make_files(tmp_path / "drop")
     script = tmp_path / "driver.py"
     script.write_text(DRIVER)
-    mode = "batch" if crashes[0] == "batch" else "one"
-    for point in crashes[1:] if mode == "batch" else crashes:
+    mode = crashes[0] if crashes[0].startswith("batch") else "one"
+    for point in crashes[1:] if mode != "one" else crashes:
         assert run_driver(script, cfg, point, mode) == -signal.SIGKILL, f"hook {point} did not fire"
     assert run_driver(script, cfg, None, mode) == 0
     got = state_of(tmp_path)
