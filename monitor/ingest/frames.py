@@ -11,7 +11,7 @@ from monitor.ingest.table import FRAME_TEXT
 STR = pd.Series([], dtype="str").dtype  # pandas' default string dtype (pyarrow storage, NaN as missing)
 SMALL_FRAME_ROWS = 10_000  # frames up to this many rows are built by pandas' array constructor (see frame_of)
 _KINDS = {"source_line": "int64", "value": "float64", "mean": "float64", "sd": "float64", "n": "int64"}
-_COLUMN_INDEX: dict[tuple[str, ...], pd.Index] = {}  # Index objects are immutable: one per column set
+_COLUMN_INDEX: dict[tuple[str, ...], pd.Index] = {}  # one per column set; each frame gets a cheap copy
 _EMPTY: dict[tuple[str, ...], pd.DataFrame] = {}
 
 
@@ -28,7 +28,9 @@ def frame_of(arrays: list[object], columns: tuple[str, ...], n: int) -> pd.DataF
         if columns not in _COLUMN_INDEX:
             _COLUMN_INDEX[columns] = pd.Index(columns)
         try:
-            return from_arrays(arrays, columns=_COLUMN_INDEX[columns], index=index, verify_integrity=False)
+            # a copy: a consumer setting ``frame.columns.name`` must not rename every other frame's columns
+            return from_arrays(arrays, columns=_COLUMN_INDEX[columns].copy(), index=index,
+                               verify_integrity=False)
         except TypeError:  # another signature in another pandas version
             pass
     return pd.DataFrame(dict(zip(columns, arrays)), index=index, copy=False)

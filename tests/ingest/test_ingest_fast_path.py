@@ -162,3 +162,17 @@ def test_clean_shapes_read_the_same_both_ways(cells: list[tuple[str, str, str]],
     """Clean files of the canonical shape (the ones the fast path takes): identical Exports."""
     body = "".join(f"{lot},{pad}{v}{pad},{unit},2026-12-01T06:00:{i % 60:02d}\n" for i, (lot, v, pad) in enumerate(cells))
     assert_same(("lot,value,unit,timestamp\n" + body).encode())
+
+
+def test_frames_share_no_mutable_parts() -> None:
+    """Renaming one Export's index or columns, or adding a column, leaves the next Export untouched."""
+    data = brackenfield(20)
+    first = read_export_bytes(data, name="a.csv")
+    for frame in (first.rows, first.summaries):
+        frame.columns.name = "renamed"
+        frame.index.name = "renamed"
+        frame["extra"] = 1.0
+    second = read_export_bytes(data, name="b.csv")
+    for frame in (second.rows, second.summaries):
+        assert frame.columns.name is None and frame.index.name is None
+        assert "extra" not in frame.columns
