@@ -71,8 +71,11 @@ def add_values(conn: sqlite3.Connection, how: Judging, file_id: int, export: Any
     open_rows = conn.execute("SELECT line, product, lot FROM lots WHERE state = 'open' ORDER BY id").fetchall()
     plan = lots.plan_file({r[0]: LotKey(*r) for r in open_rows}, lots.runs_of_codes(codes, keys), src, markers)
     del codes
+    last_segment = max((i for i, step in enumerate(plan.steps) if isinstance(step, lots.Segment)), default=-1)
     first = True
-    for step in plan.steps:
+    for i, step in enumerate(plan.steps):
+        if i == last_segment + 1:
+            cols.release()  # every row is stored: let the last window's lists go before judging
         if isinstance(step, lots.Segment):
             lot_id, seq0 = open_lot(conn, step.key, at, ts, step.stop - step.start, file_id)
             if seq0 == 1:
@@ -130,6 +133,11 @@ class RowColumns:
                           self.head.slice(a, b - a).to_pylist(), stamps, self.source_lines[a:b].tolist())
             self.window = w
         return a, b, self.lists
+
+
+    def release(self) -> None:
+        """Drop the current window's lists (they are rebuilt if asked for again)."""
+        self.lists, self.window = (), -1
 
 
 def _is_text(ser: pd.Series) -> bool:
