@@ -131,6 +131,12 @@ def judge(paths: list[str], rules: list[Rule], profiles: list) -> tuple[list[Ver
     for path in paths:
         try:
             exports.append(read_export(path, profile_for(path, profiles)))
+            for note in exports[-1].notes:
+                print(f"lotwarden: note: {path}: {note}", file=sys.stderr)
+            if exports[-1].bad_rows:
+                first = exports[-1].bad_rows[0]
+                print(f"lotwarden: note: {path}: {len(exports[-1].bad_rows)} bad row(s) left out, first on line "
+                      f"{first.line}: {first.reason}", file=sys.stderr)
         except ExportError as exc:
             errors.append(str(exc))
         except OSError as exc:

@@ -49,6 +49,7 @@ class Export:
     end_of_lot: tuple[tuple[int, str], ...] = ()
     density: float | None = None
     profile: str = "default"
+    notes: tuple[str, ...] = ()     # things the operator should know that cost no measurement
 
 
 def read_export(path: str | Path, profile: FeedProfile | None = None) -> Export:
@@ -145,6 +146,7 @@ class _Rows:
         # A line holding only the end-of-lot text (no delimiters) is a marker, not a row with too few fields.
         eol = prof.end_of_lot
         self.problems = tuple(p for p in raw.problems if eol is None or p.text.strip() != eol)
+        self.notes: list[str] = []
         self.marker_lines = tuple(p.line for p in raw.problems if eol is not None and p.text.strip() == eol)
 
     def text(self, canon: str) -> pa.ChunkedArray | None:
@@ -201,7 +203,7 @@ class _Rows:
         rows, summaries = (frame, empty_frame(SUMMARY_COLUMNS)) if self.kind == "values" else (empty_frame(ROW_COLUMNS), frame)
         return Export(path=self.name, kind=self.kind, rows=rows, summaries=summaries,  # type: ignore[arg-type]
                       bad_rows=bad_rows, dropped=int(dropped.sum()), end_of_lot=markers,
-                      density=prof.density, profile=prof.name)
+                      density=prof.density, profile=prof.name, notes=tuple(self.notes))
 
     def _release(self, keep: tuple[str, ...] = ()) -> None:
         """Let go of every raw column except those of ``keep`` (a large file's text need not outlive its use)."""
@@ -278,9 +280,16 @@ class _Rows:
         if self.prof.timestamp_format:
             self.flag(bad, "timestamp", f"timestamp '{{v}}' does not match {self.prof.timestamp_format!r} — "
                                         "fix the row or timestamp_format in the feed profile")
-        else:
-            self.flag(bad, "timestamp", "timestamp '{v}' is not ISO 8601 and cannot be read unambiguously — "
-                                        "set timestamp_format in the feed profile")
+        elif bad.any():
+            # Without a timestamp_format a timestamp is a courtesy: one that cannot be read unambiguously never
+            # costs its measurement. The cell is left empty and the operator is told (the file is archived).
+            rows = np.flatnonzero(bad & (self.code == 0))
+            if rows.size:
+                first = int(rows[0])
+                self.notes.append(
+                    f"{rows.size} timestamp(s) not ISO 8601 and not readable unambiguously, first "
+                    f"{_short(str(t[first].as_py()))!r} on line {int(self.lines[first])}; the measurements are kept "
+                    "without a time — set timestamp_format in the feed profile")
         return stamps
 
     # -- results ----------------------------------------------------------------------------------

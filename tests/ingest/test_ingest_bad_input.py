@@ -29,8 +29,6 @@ def one_bad(data: bytes, profile: FeedProfile = LENIENT):
     (b"lot,value\nA,1\nA,1e999\n", 3, "value", "1e999", "is not finite"),
     (b"lot,value\nA,1\n  ,2\n", 3, "lot", "  ", "empty lot code"),
     (b"lot,value,unit\nA,1,g\nA,2,lbs\n", 3, "unit", "lbs", "unknown unit 'lbs'"),
-    (b"lot,value,timestamp\nA,1,2026-12-01T06:00:00\nA,2,yesterday\n", 3, "timestamp", "yesterday",
-     "is not ISO 8601"),
 ])
 def test_bad_rows_name_line_column_raw_value_and_reason(data: bytes, line: int, column: str, value: str,
                                                         fragment: str) -> None:
@@ -172,3 +170,19 @@ def test_unusable_timestamp_format_names_the_profile_key() -> None:
     with pytest.raises(ExportError) as info:
         read_export_bytes(b"lot,value,timestamp\nA,1,x\n", name="f.csv", profile=prof)
     assert info.value.key == "profiles.hall2.timestamp_format" and "'%Q' cannot be used" in str(info.value)
+
+
+def test_unreadable_timestamp_keeps_its_measurement_and_is_noted() -> None:
+    """Without timestamp_format, an unreadable timestamp costs no measurement: the cell is empty, a note says so."""
+    exp = read_export_bytes(b"lot,value,timestamp\nA,1,2026-12-01T06:00:00\nA,2,yesterday\n", name="hall2.csv")
+    assert exp.bad_rows == ()
+    assert exp.rows["value"].tolist() == [float("1"), float("2")]  # reference: Python float()
+    assert exp.rows["timestamp"].tolist() == ["2026-12-01T06:00:00", ""]
+    assert len(exp.notes) == 1 and "'yesterday' on line 3" in exp.notes[0] and "timestamp_format" in exp.notes[0]
+
+
+def test_timestamp_against_a_configured_format_is_a_bad_row() -> None:
+    """With timestamp_format set, a cell that does not match it is a bad row naming line and column."""
+    exp, bad = one_bad(b"lot,value,timestamp\nA,1,01.12.2026 06:00\nA,2,yesterday\n",
+                       FeedProfile(timestamp_format="%d.%m.%Y %H:%M", max_bad_rows=5))
+    assert (bad.line, bad.column, bad.value) == (3, "timestamp", "yesterday")

@@ -240,11 +240,13 @@ def test_timestamps_with_zone_offsets_and_inferred_formats() -> None:
 
 
 def test_ambiguous_day_month_order_is_refused_not_guessed() -> None:
-    """"01.12.2026" may be 1 December or 12 January: without timestamp_format it is a bad row, never a guess."""
+    """"01.12.2026" may be 1 December or 12 January: without timestamp_format it is never guessed; the
+    measurements stay, without a time, and a note asks for timestamp_format."""
     data = b"lot,value,timestamp\nA,1,01.12.2026 06:00:01\nA,2,02.12.2026 06:00:02\nA,3,\n"
     exp = read_export_bytes(data, name="a.csv", profile=FeedProfile(max_bad_rows=5))
-    assert [(b.line, b.column) for b in exp.bad_rows] == [(2, "timestamp"), (3, "timestamp")]
-    assert "timestamp_format" in exp.bad_rows[0].reason and exp.rows["source_line"].tolist() == [4]
+    assert exp.bad_rows == () and exp.rows["source_line"].tolist() == [2, 3, 4]
+    assert exp.rows["timestamp"].tolist() == ["", "", ""]
+    assert "timestamp_format" in exp.notes[0] and "line 2" in exp.notes[0]
     fixed = read_export_bytes(data, name="a.csv", profile=FeedProfile(timestamp_format="%d.%m.%Y %H:%M:%S"))
     assert fixed.rows["timestamp"].tolist() == ["2026-12-01T06:00:01", "2026-12-02T06:00:02", ""]
 
