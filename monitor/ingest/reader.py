@@ -147,6 +147,7 @@ class _Rows:
         eol = prof.end_of_lot
         self.problems = tuple(p for p in raw.problems if eol is None or p.text.strip() != eol)
         self.notes: list[str] = []
+        self._decimal_mark: str | None = None
         self.marker_lines = tuple(p.line for p in raw.problems if eol is not None and p.text.strip() == eol)
 
     def text(self, canon: str) -> pa.ChunkedArray | None:
@@ -230,8 +231,21 @@ class _Rows:
         return blank
 
     # -- conversions ------------------------------------------------------------------------------
+    def _decimal(self, text: pa.ChunkedArray) -> str:
+        """The decimal mark: the profile's, except that a file split by ";" or tab whose number column has
+        commas and no point at all is read with a decimal comma (a note says so)."""
+        if self._decimal_mark is None:
+            self._decimal_mark = self.prof.decimal
+            if (self.prof.decimal == "." and self.header.delimiter in (";", "\t") and len(text)
+                    and pc.any(pc.match_substring(text, ",")).as_py()
+                    and not pc.any(pc.match_substring(text, ".")).as_py()):
+                self._decimal_mark = ","
+                self.notes.append("numbers read with a decimal comma (the file has commas and no decimal points);"
+                                  " set decimal in a feed profile to make this explicit")
+        return self._decimal_mark
+
     def _number(self, canon: str, integer: bool = False) -> np.ndarray:
-        decimal = self.prof.decimal
+        decimal = self._decimal(self.text(canon))
         values, status = convert.parse_numbers(self.text(canon), decimal)
         if integer:
             ok = status == convert.OK

@@ -332,3 +332,16 @@ def test_line_numbers_and_values_across_parser_blocks() -> None:
     assert dict(zip(exp.rows["source_line"].tolist(), exp.rows["value"].tolist())) == good
     assert [b.line for b in exp.bad_rows] == bad
     assert exp.dropped == sum(1 for ln in lines if ln.endswith(";-9999;1"))
+
+
+def test_semicolon_file_with_decimal_commas_needs_no_profile() -> None:
+    """A ";"-separated file whose values have commas and no points is read with a decimal comma, and says so."""
+    exp = read_export_bytes(b"lot;value\nA;500,25\nA;499,5\nA;501\n", name="w.csv")
+    assert exp.rows["value"].tolist() == [float("500.25"), float("499.5"), float("501")]  # reference: float()
+    assert exp.bad_rows == () and "decimal comma" in exp.notes[0]
+
+
+def test_points_and_commas_mixed_are_not_guessed() -> None:
+    """With both marks in the column the profile's decimal point stands and comma cells are bad rows."""
+    exp = read_export_bytes(b"lot;value\nA;500.25\nA;499,5\nA;501\n", name="w.csv", profile=FeedProfile(max_bad_rows=5))
+    assert [b.line for b in exp.bad_rows] == [3] and exp.notes == ()
