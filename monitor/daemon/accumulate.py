@@ -3,6 +3,8 @@
 Called by the intake inside its write transaction: values are appended per (line, product, lot) in arrival
 order, lots are opened, reopened and closed by the policy in ``monitor.daemon.lots``, and each closed lot is
 judged (``monitor.daemon.judge``) with its verdict, audit record and alert written on the same connection.
+Per-row Python objects stay bounded by one window: rows are grouped from the frame's arrays and stored in
+windows of ``CHUNK_ROWS``; a lot is read back in chunks (or taken from ``judge.RecentValues`` when just stored).
 """
 
 from __future__ import annotations
@@ -148,7 +150,7 @@ def arrow_text(df: pd.DataFrame, col: str, n: int, default: str | None) -> pa.Ar
     """A text column as an Arrow string array without copying where pandas keeps it in Arrow already;
     a missing column or value is ``default``."""
     if col not in df.columns:
-        return pa.array([default] * n, type=pa.large_string()) if default is not None else pa.nulls(n, pa.large_string())
+        return pa.repeat(pa.scalar(default, type=pa.large_string()), n)
     ser = df[col]
     arr: pa.Array | pa.ChunkedArray | None
     try:

@@ -127,9 +127,10 @@ CREATE INDEX IF NOT EXISTS verdicts_lot ON verdicts(line, product, lot);
 CREATE TABLE IF NOT EXISTS audit (
     id      INTEGER PRIMARY KEY,
     at      TEXT NOT NULL,                   -- ISO 8601 UTC
-    event   TEXT NOT NULL,                   -- file-taken | file-duplicate | file-revised | file-rejected |
-                                             -- file-archived | lot-opened | lot-reopened | lot-closed |
-                                             -- verdict | config-reloaded | config-rejected | ...
+    event   TEXT NOT NULL,                   -- file-taken (names the lots it opened) | file-duplicate |
+                                             -- file-revised | file-rejected | file-move-skipped |
+                                             -- lot-reopened | verdict (one per closed lot, with its
+                                             -- close_reason) | config-reloaded | config-rejected | ...
     file_id INTEGER,
     line    TEXT NOT NULL DEFAULT '',
     product TEXT NOT NULL DEFAULT '',
