@@ -19,6 +19,7 @@ from monitor.stats.location import check_alternative, critical_value
 __all__ = ["MAX_PLAN_N", "n_for_power", "plan_sample_size", "power", "power_curve"]
 
 MAX_PLAN_N = 10 ** 9          # beyond this, sample-size planning reports "not reachable"
+_WINDOW = 4                   # half-width of the fast path's window of sizes around the normal-theory guess
 
 
 def _nct_cdf(df: np.ndarray, nc: np.ndarray, t: np.ndarray) -> np.ndarray:
@@ -125,6 +126,27 @@ def n_for_power(shift: float | np.ndarray, sd: float | np.ndarray, alpha: float,
     za, zp = float(special.ndtri(1.0 - a)), float(special.ndtri(target_power))
     with np.errstate(all="ignore"):
         guess = np.minimum(((za + zp) * d / s) ** 2, float(MAX_PLAN_N))
+    # Fast path: one vectorised power call on a window of sizes around the corrected guess settles most
+    # inputs (the smallest n is inside the window when its first size misses and its last reaches).
+    result = np.full(s.shape[0], -1, dtype=np.int64)
+    settled = np.zeros(s.shape[0], dtype=bool)
+    with np.errstate(all="ignore"):
+        centre = np.ceil(guess + (0.0 if known_sd else za * za / 2.0))
+    window = np.arange(-_WINDOW, _WINDOW + 1)
+    fits = ok & np.isfinite(centre) & (centre - _WINDOW >= 2) & (centre + _WINDOW < MAX_PLAN_N)
+    if fits.any():
+        cand = centre[fits, None].astype(np.int64) + window[None, :]
+        hit = power(cand, s[fits, None], d[fits, None], alpha, alternative, known_sd) >= target_power
+        inside = ~hit[:, 0] & hit[:, -1]
+        first = np.argmax(hit, axis=1)
+        rows = np.flatnonzero(fits)[inside]
+        result[rows] = cand[inside, first[inside]]
+        settled[rows] = True
+        # power rises with n: a window that is not monotone (numerical noise) is left to the bisection
+        mono = np.all(hit[:, 1:] >= hit[:, :-1], axis=1)
+        settled[np.flatnonzero(fits)[inside & ~mono]] = False
+    if settled.all():
+        return result
     lo = np.clip(np.floor(0.9 * guess) - 1, 1, MAX_PLAN_N).astype(np.int64)     # want: power(lo) < target
     hi = np.clip(np.ceil(1.1 * guess + za * za / 2 + 5), 2, MAX_PLAN_N).astype(np.int64)   # want: reached
     low_hit = (lo >= 2) & reaches(np.maximum(lo, 2))
@@ -147,7 +169,7 @@ def n_for_power(shift: float | np.ndarray, sd: float | np.ndarray, alpha: float,
         hit = reaches(mid)
         hi = np.where(gap & hit, mid, hi)
         lo = np.where(gap & ~hit, mid, lo)
-    return np.where(ok & ~unreachable, hi, -1)
+    return np.where(settled, result, np.where(ok & ~unreachable, hi, -1))
 
 
 def plan_sample_size(sd: float, shift: float, alpha: float, power: float, alternative: str = "two-sided",
