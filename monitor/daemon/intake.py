@@ -310,13 +310,18 @@ class Intake:
         n_bad = len(getattr(export, "bad_rows", ()) or ())
         conn.execute("UPDATE files SET state='done', processed_at=?, archived_path=?, kind=?, n_values=?,"
                      " n_bad_rows=? WHERE id=?", (at, str(target), kind, n_values, n_bad, file_id))
+        bad_rows = tuple(getattr(export, "bad_rows", ()) or ())
+        notes = [str(n) for n in (getattr(export, "notes", ()) or ())]
         Store.audit(conn, at, "file-taken", file_id=file_id,
                     detail={"path": str(it.path), "sha256": it.sha, "kind": kind, "values": n_values,
                             "bad_rows": n_bad, "profile": getattr(it.profile, "name", None),
-                            "archived_path": str(target), "lots_opened": tally.opened})
+                            "archived_path": str(target), "lots_opened": tally.opened, "notes": notes,
+                            "bad_row_details": [{"line": b.line, "column": b.column, "reason": b.reason}
+                                                for b in bad_rows[:50]]})
+        said = [f"{n_bad} bad row(s) left out, first line {bad_rows[0].line}: {bad_rows[0].reason}"] if bad_rows else []
         it.outcome = FileOutcome(str(it.path), status, file_id=file_id, sha256=it.sha, n_values=n_values,
                                  lots_closed=tuple(tally.closed), verdicts=tuple(tally.verdicts),
-                                 alerts=tuple(tally.alerts), kind=kind)
+                                 alerts=tuple(tally.alerts), kind=kind, reason="; ".join(said + notes))
         it.move = (target, "done")
 
     def _mark_rejected(self, conn: sqlite3.Connection, it: _Item, now: datetime, at: str) -> None:
