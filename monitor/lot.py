@@ -8,7 +8,7 @@ is the one JSON shape used by ``check --format json``, the alert log and alert t
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np

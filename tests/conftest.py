@@ -1,6 +1,5 @@
 """Project-wide test fixtures."""
 
-import sys
 from pathlib import Path
 
 import pytest

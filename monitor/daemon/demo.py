@@ -22,6 +22,7 @@ from pathlib import Path
 from typing import Any, Callable, TextIO
 
 from monitor.daemon.service import Daemon
+from monitor.polling import wait_until
 
 SETTLE_SECONDS = 0.5
 DISCLAIMER = ("The tool screens; net-quantity compliance is decided under local weights-and-measures law by "
@@ -239,14 +240,6 @@ def drop_by_rename(src: Path, dest: Path) -> None:
     os.replace(tmp, dest)
 
 
-def wait_until(pred: Callable[[], Any], timeout: float, step: float = 0.05) -> Any:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        v = pred()
-        if v:
-            return v
-        time.sleep(step)
-    return pred()
 
 
 def pending_deliveries(db: Path, channel: str) -> int:

@@ -9,7 +9,6 @@ from __future__ import annotations
 import glob
 import math
 import tomllib
-from pathlib import Path
 
 import numpy as np
 import pandas as pd

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import json
-from pathlib import Path
 
 
 def test_bad_rows_and_notes_are_audited(intake_env) -> None:

@@ -12,6 +12,7 @@ import textwrap
 import time
 from collections import Counter
 from pathlib import Path
+from monitor.polling import wait_until as wait_for
 
 
 RULE = textwrap.dedent("""\
@@ -89,14 +90,6 @@ class Proc:
             self.fh.close()
 
 
-def wait_for(pred, timeout: float = 30.0, step: float = 0.05):
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        v = pred()
-        if v:
-            return v
-        time.sleep(step)
-    return pred()
 
 
 def query(db: Path, sql: str, *args):

@@ -14,6 +14,7 @@ from pathlib import Path
 import pytest
 
 from monitor.daemon.service import Daemon
+from monitor.polling import wait_until as wait_for
 
 RULE_OAT = textwrap.dedent("""\
     name = "oat-500"
@@ -104,14 +105,6 @@ class Running:
         assert not self.thread.is_alive()
 
 
-def wait_for(pred, timeout: float = 15.0, step: float = 0.05):
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        v = pred()
-        if v:
-            return v
-        time.sleep(step)
-    return pred()
 
 
 def query(db: Path, sql: str, *args):

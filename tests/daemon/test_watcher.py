@@ -11,6 +11,7 @@ from types import SimpleNamespace
 import pytest
 
 from monitor.daemon.watcher import FolderWatcher, NameFilter, SettleTracker, scan
+from monitor.polling import wait_until as wait_for
 
 
 @pytest.fixture(autouse=True)
@@ -26,14 +27,6 @@ def _no_leaked_threads():
     pytest.fail(f"threads left running: {extra}")
 
 
-def wait_for(pred, timeout: float = 10.0, step: float = 0.02):
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        value = pred()
-        if value:
-            return value
-        time.sleep(step)
-    return pred()
 
 
 # --- name filter ---------------------------------------------------------------------------------
