@@ -41,8 +41,17 @@ class Alert:
             raise ValueError(f"alert kind {self.kind!r} must be one of {', '.join(ALERT_KINDS)}")
 
     def to_json(self) -> dict[str, Any]:
-        return {"kind": self.kind, "dedup_key": self.dedup_key, "created_at": self.created_at,
-                "line": self.line, "product": self.product, "lot": self.lot, **{"data": self.data}}
+        """The alert-log object. For hold and review alerts the lot's numbers also stand at the top level,
+        keyed as in ``lotwarden check --format json`` (``n``, ``mean``, ``p_value``, ``verdict``, ...);
+        ``data`` keeps everything, the lot's values included."""
+        obj: dict[str, Any] = {"kind": self.kind, "dedup_key": self.dedup_key, "created_at": self.created_at,
+                               "line": self.line, "product": self.product, "lot": self.lot}
+        if self.kind in ("hold", "review"):
+            for key, value in self.data.items():
+                if key not in obj and key not in ("values", "data"):
+                    obj[key] = value
+        obj["data"] = self.data
+        return obj
 
     def dumps(self) -> str:
         return json.dumps(self.to_json(), sort_keys=True, ensure_ascii=False, allow_nan=False)

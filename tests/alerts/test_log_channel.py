@@ -106,3 +106,15 @@ def test_command_exit_75_and_timeout_are_retried(db_path, tmp_path, put, alert_f
     finally:
         d.close()
     assert states()[(a.dedup_key, "command")] == "pending"
+
+
+def test_hold_line_carries_the_lot_numbers_at_top_level() -> None:
+    """A hold alert's log object has the check --format json keys at top level, values only under data."""
+    from monitor.alerts.alert import Alert
+
+    data = {"line": "L1", "product": "OAT-500", "lot": "A1", "n": 30, "mean": 501.2, "p_value": 0.001,
+            "verdict": "hold", "values": [501.0, 501.4]}
+    obj = Alert("hold", "hold|L1|OAT-500|A1|v1", "2026-11-30T06:00:00+00:00", data, "L1", "OAT-500", "A1").to_json()
+    assert (obj["n"], obj["mean"], obj["p_value"], obj["verdict"]) == (30, 501.2, 0.001, "hold")
+    assert "values" not in obj and obj["data"]["values"] == [501.0, 501.4]
+    assert Alert.from_json(obj).data == data
