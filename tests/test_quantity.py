@@ -30,8 +30,9 @@ def test_tne_below_5_is_refused() -> None:
 
 @pytest.mark.parametrize("n,factor", [(20, 0.640), (30, 0.503), (50, 0.379), (80, 0.295)])
 def test_mean_criterion_factor(n: int, factor: float) -> None:
-    """Qn − mean_limit equals t(0.995, n−1)/√n · s; factors printed in SI 2006/659 Schedule 2 (20, 50) and the
-    New Zealand regulations (30, 80), compared at half a unit of the last printed decimal."""
+    """Qn − mean_limit equals t(0.995, n−1)/√n · s; sample correction factors as listed in
+    ../shared/REFERENCES.md §6 (SI 2006/659 Schedule 2; 30 and 80 as published in the New Zealand
+    regulations), compared at half a unit of the last printed decimal."""
     rng = np.random.default_rng(n)
     x = rng.standard_normal(n)
     x = (x - x.mean()) / x.std(ddof=1)  # s = 1 exactly
@@ -46,7 +47,8 @@ def test_sampling_plan_acceptance_numbers() -> None:
 
 
 def test_t1_t2_counts_and_outcome() -> None:
-    """A pack short by more than 2·TNE fails the screen; counts are by the TNE limits."""
+    """A pack short by more than 2·TNE fails the screen; counts are by the TNE limits (T1 = Qn − TNE,
+    T2 = Qn − 2·TNE: Council Directive 76/211/EEC Annex I, published; ../shared/REFERENCES.md §6)."""
     values = np.full(50, 505.0)
     values[:2] = 500 - 16.0       # below T1 (485) but above T2 (470)
     r = screen_average_quantity(values, 500.0)

@@ -173,6 +173,7 @@ def z_test_arrays(n: np.ndarray, mean: np.ndarray, known_sd: float, target: floa
     Examples
     --------
     >>> import numpy as np
+    >>> # z = (498 − 500)/(5/√25) = −2; Φ(−2) = 0.02275 (standard normal table)
     >>> r = z_test_arrays(np.array([25]), np.array([498.0]), 5.0, 500.0, "less")
     >>> round(float(r["statistic"][0]), 3), round(float(r["p_value"][0]), 4)
     (-2.0, 0.0228)
@@ -238,6 +239,7 @@ def z_test(n: int, mean: float, known_sd: float, target: float, alternative: str
 
     Examples
     --------
+    >>> # upper bound 498 + 1.6449·5/√25 = 499.645 (z(0.95) = 1.6449, standard normal table)
     >>> r = z_test(25, 498.0, 5.0, 500.0, "less")
     >>> round(r.statistic, 3), r.df, r.ci_low, round(r.ci_high, 3)
     (-2.0, None, None, 499.645)

@@ -47,6 +47,7 @@ def segment_moments(values: np.ndarray, lengths: np.ndarray) -> tuple[np.ndarray
     Examples
     --------
     >>> import numpy as np
+    >>> # by hand: mean(1, 2, 3) = 2, var = 1; mean(10, 12) = 11, var = 2
     >>> n, mean, var = segment_moments(np.array([1.0, 2.0, 3.0, 10.0, 12.0]), np.array([3, 2]))
     >>> mean.tolist(), var.tolist()
     ([2.0, 11.0], [1.0, 2.0])

@@ -8,7 +8,9 @@ import time
 from pathlib import Path
 from typing import Any, Callable, Iterable
 
+import numpy as np
 import pytest
+from scipy import stats
 
 from monitor.alerts import outbox
 from monitor.alerts.alert import Alert
@@ -42,13 +44,20 @@ def db_path(tmp_path: Path) -> Path:
 def hold_data(lot: str = "A1001", line: str = "L2", product: str = "OAT-500", **over: Any) -> dict[str, Any]:
     """A hold verdict's JSON as ``Verdict.to_json()`` shapes it, plus the lot's values (invented demo lot)."""
     values = [497.1, 498.0, 496.4, 497.7, 498.2, 496.9, 497.5, 498.4, 496.8, 497.3]
+    # the numbers a verdict on these values carries, from the reference library (scipy.stats)
+    ref = stats.ttest_1samp(values, 500.0)
+    ci = ref.confidence_interval(0.95)
+    sw = stats.shapiro(values)
+    sd = float(np.std(values, ddof=1))
     data: dict[str, Any] = {
         "file": f"exports/{line}-{lot}.csv", "files": [f"exports/{line}-{lot}.csv"], "line": line,
         "product": product, "lot": lot, "rule": "oat-500", "rule_version": "3f2a9c1d", "n": len(values),
-        "mean": 497.43, "sd": 0.64, "target": 500.0, "unit": "g", "alternative": "two-sided", "alpha": 0.05,
-        "test": "t", "statistic": -12.7, "df": 9.0, "p_value": 4.7e-07, "critical_value": 2.262,
-        "se": 0.2024, "ci_low": 496.97, "ci_high": 497.89, "effect_size": -4.0,
-        "normality": {"test": "shapiro", "statistic": 0.97, "p_value": 0.88, "passed": True, "note": ""},
+        "mean": float(np.mean(values)), "sd": sd, "target": 500.0, "unit": "g", "alternative": "two-sided",
+        "alpha": 0.05, "test": "t", "statistic": float(ref.statistic), "df": 9.0, "p_value": float(ref.pvalue),
+        "critical_value": float(stats.t.ppf(0.975, 9)), "se": sd / float(np.sqrt(len(values))),
+        "ci_low": float(ci.low), "ci_high": float(ci.high), "effect_size": (float(np.mean(values)) - 500.0) / sd,
+        "normality": {"test": "shapiro", "statistic": float(sw.statistic), "p_value": float(sw.pvalue),
+                      "passed": True, "note": ""},
         "power": 0.93, "n_for_power": 8, "verdict": "hold", "reason": "mean below target", "excluded": 0,
         "heads": [], "values": values,
     }

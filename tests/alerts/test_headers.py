@@ -30,7 +30,8 @@ def test_cleaned_text_has_no_control_chars_or_encoded_word_markers(text):
 
 
 def test_known_payloads():
-    """The payloads from the brief lose their line breaks and encoded-word markers."""
+    """Known injection payloads (CR/LF header smuggling, and the RFC 2047 encoded newline of CVE-2024-6923)
+    lose their line breaks and encoded-word markers."""
     assert clean_header_text("A1\r\nBcc: evil@example.com") == "A1 Bcc: evil@example.com"
     assert "=?" not in clean_header_text("=?utf-8?q?x=0ABcc:_evil@example.com?=")
     assert clean_header_text("=?=??=x") == "x"       # removal repeats until no marker is left

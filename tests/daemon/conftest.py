@@ -135,5 +135,6 @@ def intake_env(tmp_path: Path, clock: StepClock):
 
 @pytest.fixture(scope="session")
 def engine_ready() -> bool:
-    """Whether monitor.engine.evaluate is implemented yet."""
-    return engine_works()
+    """The engine is implemented: a regression to a stub fails here instead of skipping the scipy checks."""
+    assert engine_works(), "monitor.engine.evaluate is not implemented"
+    return True
