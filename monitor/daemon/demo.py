@@ -83,14 +83,6 @@ def profile_tables(repo_config: Path | None) -> dict[str, dict[str, Any]]:
     return out
 
 
-def email_available() -> bool:
-    try:
-        import monitor.alerts.email_dispatch  # noqa: F401
-    except ImportError:
-        return False
-    return True
-
-
 def write_demo_config(root: Path, profiles: dict[str, dict[str, Any]], smtp_port: int | None) -> Path:
     """Write ``root/lotwarden.toml`` for the demo tree; return its path."""
     lines = [
@@ -295,20 +287,17 @@ def run_demo(out: TextIO | None = None, *, workdir: Path | None = None, start: P
     shutil.copytree(feeds, incoming, dirs_exist_ok=True)
     samples = sorted(p for p in incoming.iterdir() if p.is_file() and not p.name.startswith("."))
 
-    controller = None
-    smtp_port = None
-    sink = PrintingSink(story.say)
-    if email_available():
-        from aiosmtpd.controller import Controller
+    from aiosmtpd.controller import Controller
 
-        smtp_port = free_loopback_port()
-        controller = Controller(sink, hostname="127.0.0.1", port=smtp_port)
-        controller.start()
+    sink = PrintingSink(story.say)
+    smtp_port = free_loopback_port()
+    controller = Controller(sink, hostname="127.0.0.1", port=smtp_port)
+    controller.start()
     cfg = write_demo_config(root, profile_tables(repo_cfg), smtp_port)
     story.say(f"demo plant folder: {root}")
     story.say(f"config: {cfg.name}; {len(list((root / 'rules').glob('*.toml')))} rule files; "
               f"{len(samples)} sample exports; alerts -> state/alerts.jsonl"
-              + (f" and e-mail via 127.0.0.1:{smtp_port}" if smtp_port else " (e-mail channel not installed)"))
+              + f" and e-mail via 127.0.0.1:{smtp_port}")
 
     log_file = open(root / "state-daemon.log", "a", encoding="utf-8")
     daemon = Daemon(cfg, on_event=story.on_event, log_stream=log_file)
@@ -363,17 +352,15 @@ def run_demo(out: TextIO | None = None, *, workdir: Path | None = None, start: P
         story.say("stopping the daemon (it sends what the e-mail channel still groups)")
         daemon.stop()
         th.join(15)
-        if smtp_port is not None:
-            if pending_deliveries(db, "email"):
-                story.say("  !! some e-mails were not delivered")
-                ok = False
-            wait_until(lambda: sink.count > 0, 3)   # the sink prints from its own thread
+        if pending_deliveries(db, "email"):
+            story.say("  !! some e-mails were not delivered")
+            ok = False
+        wait_until(lambda: sink.count > 0, 3)   # the sink prints from its own thread
         print_summary(summary_rows(db), story.say)
     finally:
         daemon.stop()
         th.join(15)
         log_file.close()
-        if controller is not None:
-            controller.stop()
+        controller.stop()
     story.say(f"done: {daemon.files_done} files taken, {sink.count} e-mails received; files are in {root}")
     return 0 if ok and result.get("rc") == 0 else 1

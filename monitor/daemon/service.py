@@ -1,28 +1,31 @@
-"""The run loop: wires config, rules, state store, intake, watcher, scheduler and dispatcher, and reloads.
+"""The run loop: wires config, rules, state store, intake, watcher, scheduler and dispatcher.
 
 One thread (the caller of :meth:`Daemon.run`) owns the state store and the intake: it takes finished files
 from the settle tracker and processes them one at a time, closes idle lots and reloads config and rules.
 Scheduler jobs and observer callbacks only post hints and requests and wake that thread.
+
+Log setup lives in :mod:`monitor.daemon.logsetup`, the reload check in :mod:`monitor.daemon.reload` and the
+signal handlers in :mod:`monitor.daemon.signals`; their public names stay importable from here.
 """
 
 from __future__ import annotations
 
 import concurrent.futures
-import hashlib
 import logging
 import queue
 import os
-import signal
 import sys
 import threading
-import time
-from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Callable, TextIO
 
 from monitor.alerts.alert import Alert
 from monitor.errors import LotwardenError
+from monitor.daemon.logsetup import LogSetup, OneLineFormatter  # noqa: F401  (re-exported)
+from monitor.daemon.reload import (  # noqa: F401  (re-exported for callers of this module)
+    Fingerprint, Reloading, ReloadStep, content_hash, decide_reload, take_fingerprint)
+from monitor.daemon.signals import SignalHandling
 from monitor.daemon.watcher import FolderWatcher, NameFilter, SettleTracker, scan
 
 log = logging.getLogger("lotwarden.daemon")
@@ -37,108 +40,12 @@ PAUSE_ENV = "LOTWARDEN_PAUSE_AFTER_FILES"   # test hook: stop taking files after
 EventFn = Callable[[str, dict[str, Any]], None]
 
 
-# --------------------------------------------------------------------------------------------- logging
-class OneLineFormatter(logging.Formatter):
-    """ISO-8601 UTC time, level, logger, message — and any traceback folded onto the same line."""
-
-    converter = time.gmtime
-
-    def __init__(self) -> None:
-        super().__init__("%(asctime)s %(levelname)s %(name)s: %(message)s", "%Y-%m-%dT%H:%M:%SZ")
-
-    def format(self, record: logging.LogRecord) -> str:
-        text = super().format(record)
-        return text.replace("\r", "").replace("\n", " | ")
-
-
-_LOGGERS = {"lotwarden": logging.INFO, "monitor": logging.INFO, "apscheduler": logging.WARNING,
-            "watchdog": logging.WARNING}
-
-
-class LogSetup:
-    """The daemon's log handler on the project's (and its libraries') loggers; ``undo()`` restores them."""
-
-    def __init__(self, stream: TextIO | None = None) -> None:
-        self.handler = logging.StreamHandler(stream or sys.stderr)
-        self.handler.setFormatter(OneLineFormatter())
-        self.handler.addFilter(_drop_shutdown_race)
-        self._levels: dict[str, int] = {}
-        for name, level in _LOGGERS.items():
-            lg = logging.getLogger(name)
-            self._levels[name] = lg.level
-            lg.setLevel(level)
-            lg.addHandler(self.handler)   # records still propagate: an embedding program's handlers see them
-
-    def undo(self) -> None:
-        for name, level in self._levels.items():
-            lg = logging.getLogger(name)
-            lg.removeHandler(self.handler)
-            lg.setLevel(level)
-        self.handler.flush()
-
-
-def _drop_shutdown_race(record: logging.LogRecord) -> bool:
-    """watchdog 7's inotify emitter logs this error when it is stopped while reading; it is harmless."""
-    return not (record.name.startswith("watchdog") and "called when the thread is inactive" in record.getMessage())
-
-
 def utc_now_iso() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
 
 
-# --------------------------------------------------------------------------------------------- reload
-@dataclass(frozen=True)
-class Fingerprint:
-    """What the reload check compares: (name, size, mtime_ns) of the config, every rule file and every
-    operator template file."""
-
-    stats: tuple[tuple[str, int, int], ...]
-    rule_names: frozenset[str] = field(default_factory=frozenset)
-    templates: tuple[tuple[str, int, int], ...] = ()
-
-
-def _stat_all(paths: list[Path]) -> list[tuple[str, int, int]]:
-    out: list[tuple[str, int, int]] = []
-    for p in paths:
-        try:
-            st = p.stat()
-        except OSError:   # missing (mid-edit) files are simply absent from the picture
-            continue
-        out.append((str(p), int(st.st_size), int(st.st_mtime_ns)))
-    return out
-
-
-def _listing(folder: Path | None, suffixes: tuple[str, ...]) -> list[Path]:
-    if folder is None:
-        return []
-    try:
-        return sorted(p for p in Path(folder).iterdir() if p.suffix in suffixes and not p.name.startswith("."))
-    except OSError:
-        return []
-
-
-def take_fingerprint(config_path: Path, rules_dir: Path, templates_dir: Path | None = None) -> Fingerprint:
-    """Stat the config file, the ``*.toml`` files of ``rules_dir`` and the operator templates."""
-    rules = _stat_all(_listing(rules_dir, (".toml",)))
-    return Fingerprint(tuple(_stat_all([config_path]) + rules), frozenset(Path(n).name for n, _, _ in rules),
-                       tuple(_stat_all(_listing(templates_dir, (".txt", ".html")))))
-
-
-def content_hash(paths: list[Path]) -> str:
-    """SHA-256 over the names and bytes of ``paths`` (unreadable files hash their error)."""
-    h = hashlib.sha256()
-    for p in paths:
-        h.update(str(p).encode() + b"\0")
-        try:
-            h.update(p.read_bytes())
-        except OSError as exc:
-            h.update(f"<{exc.__class__.__name__}>".encode())
-        h.update(b"\0")
-    return h.hexdigest()
-
-
 # --------------------------------------------------------------------------------------------- daemon
-class Daemon:
+class Daemon(Reloading, SignalHandling):
     """The unattended service. ``run()`` blocks until ``stop()`` (or SIGTERM/SIGINT) and returns 0,
     or returns 2 when config or rules are bad at start-up."""
 
@@ -514,86 +421,6 @@ class Daemon:
             self._event("lots-closed", {"result": result})
         return result
 
-    # ------------------------------------------------------------------ reload
-    def _fingerprint(self, config: Any) -> Fingerprint:
-        return take_fingerprint(self.config_path, config.rules_dir, getattr(config.alerts, "templates", None))
-
-    def _check_reload(self, forced: bool) -> None:
-        fp = self._fingerprint(self._config)
-        if not forced:
-            if fp == self._applied_fp:
-                self._seen_fp = fp
-                return
-            if fp != self._seen_fp:   # still changing: wait for one more check with the same picture
-                self._seen_fp = fp
-                return
-            if self._applied_fp is not None and not fp.rule_names >= self._applied_fp.rule_names:
-                missing = sorted(self._applied_fp.rule_names - fp.rule_names)
-                self._reject(LotwardenError(
-                    "rule file removed; keeping its last good version (send SIGHUP to accept a removal)",
-                    path=Path(self._config.rules_dir) / missing[0], key="rules_dir"), fp)
-                self._applied_fp = fp
-                return
-        self._reload(fp)
-
-    def _reload(self, fp: Fingerprint) -> None:
-        from monitor.daemon.config import load_config
-
-        try:
-            config = load_config(self.config_path)
-            rules = self._load_rules(config)
-        except LotwardenError as exc:
-            self._reject(exc, fp)
-            self._applied_fp = self._seen_fp = fp   # do not re-try the same bad picture every check
-            return
-        old, old_fp = self._config, self._applied_fp
-        self._config, self._rules = config, rules
-        self._applied_fp = self._seen_fp = self._fingerprint(config)
-        self._intake.set_rules(rules)
-        if hasattr(self._intake, "set_config"):
-            self._intake.set_config(config)
-        if config.watch != old.watch or config.profiles != old.profiles:
-            self._apply_watch(config)
-        if config.alerts != old.alerts and self._scheduler is not None:
-            for job_id in self._dispatch_jobs:
-                try:
-                    self._scheduler.remove_job(job_id)
-                except Exception:
-                    pass
-            if self._dispatcher is not None:
-                self._dispatcher.close()
-            self._dispatcher = self._make_dispatcher(config)   # it checks the templates itself
-            self._schedule_dispatcher()
-        elif old_fp is not None and self._applied_fp.templates != old_fp.templates:
-            self._reload_templates(config)
-        self._audit("config-reloaded", config_version=getattr(config, "version", ""),
-                    rules={r.name: r.version for r in rules})
-        log.info("reloaded: config version %s, %d rules (%s)", getattr(config, "version", "?"), len(rules),
-                 ", ".join(f"{r.name}@{r.version}" for r in rules))
-        self._event("reloaded", {"rules": len(rules)})
-
-    def _reload_templates(self, config: Any) -> None:
-        """New operator templates: checked first; a bad set leaves the one in force (config-rejected)."""
-        reload = getattr(self._dispatcher, "reload_templates", None)
-        if reload is None:
-            return
-        try:
-            reload(getattr(config.alerts, "templates", None))
-        except LotwardenError as exc:
-            self._reject(exc, self._applied_fp)
-            return
-        log.info("reloaded operator templates from %s", config.alerts.templates)
-
-    def _reject(self, exc: LotwardenError, fp: Fingerprint) -> None:
-        bad = Path(exc.path) if exc.path else self.config_path
-        digest = content_hash([bad])
-        log.error("config rejected, keeping the last good version: %s", exc)
-        self._audit("config-rejected", file=str(bad), key=exc.key, message=str(exc), content_sha256=digest)
-        self._emit_alert("config-rejected", f"config-rejected|{bad}|{digest[:16]}",
-                         {"file": str(bad), "key": exc.key, "line": exc.line, "message": str(exc),
-                          "content_sha256": digest})
-        self._event("config-rejected", {"error": str(exc)})
-
     # ------------------------------------------------------------------ alerts
     def _emit_alert(self, kind: str, dedup_key: str, data: dict[str, Any]) -> bool:
         """Store one daemon alert in the outbox in its own write transaction."""
@@ -652,37 +479,6 @@ class Daemon:
                 except Exception:
                     log.exception("close failed")
         self._dispatcher = self._store = None
-
-    # ------------------------------------------------------------------ signals
-    def _install_signals(self) -> dict[int, Any]:
-        if threading.current_thread() is not threading.main_thread():
-            return {}
-        old: dict[int, Any] = {}
-        for sig, fn in ((signal.SIGTERM, self._on_stop_signal), (signal.SIGINT, self._on_stop_signal),
-                        (signal.SIGHUP, self._on_hup)):
-            old[sig] = signal.signal(sig, fn)
-        return old
-
-    def _restore_signals(self, old: dict[int, Any]) -> None:
-        for sig, fn in old.items():
-            signal.signal(sig, fn)
-
-    # Handlers only set flags (no logging inside a signal handler); the loop logs what arrived.
-    def _on_stop_signal(self, signum: int, frame: Any) -> None:
-        self._signals.append(signal.Signals(signum).name)
-        self.stop()
-
-    def _on_hup(self, signum: int, frame: Any) -> None:
-        self._signals.append("SIGHUP")
-        self.request_reload()
-
-    def _log_signals(self) -> None:
-        while self._signals:
-            name = self._signals.pop(0)
-            if name == "SIGHUP":
-                log.info("SIGHUP: reloading config and rules")
-            else:
-                log.info("%s: finishing the file in hand, then stopping", name)
 
 
 def _bounded(fn: Callable[[], Any], seconds: float, what: str) -> None:
