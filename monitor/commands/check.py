@@ -30,7 +30,8 @@ def register(sub: argparse._SubParsersAction) -> argparse.ArgumentParser:
         "config's rules_dir, else ./rules); --target and the other ad-hoc options judge every lot without "
         "rule files, or override the matching rule's keys when --rules is also given.",
         epilog=CAUTION)
-    p.add_argument("paths", nargs="+", metavar="PATH", help="export files (CSV, weigher exports, lot summaries)")
+    p.add_argument("paths", nargs="+", metavar="PATH",
+                   help="export files (CSV, weigher exports, lot summaries), or folders of them")
     p.add_argument("--rules", metavar="DIR", help="folder of rule files (*.toml)")
     p.add_argument("--config", metavar="FILE",
                    help=f"daemon config whose [profiles.*] tell how to read exports (default: {DEFAULT_CONFIG} if present)")
@@ -194,8 +195,14 @@ def render_table(verdicts: list[Verdict]) -> str:
 def run(args: argparse.Namespace) -> int:
     profiles, config, config_path = _load_profiles(args)
     rules = _rules(args, config, config_path)
-    missing = [p for p in args.paths if not Path(p).is_file()]
-    verdicts, errors = judge([p for p in args.paths if p not in missing], rules, profiles)
+    paths: list[str] = []
+    for p in args.paths:   # a folder stands for the export files in it (hidden names left out)
+        if Path(p).is_dir():
+            paths += [str(f) for f in sorted(Path(p).iterdir()) if f.is_file() and not f.name.startswith(".")]
+        else:
+            paths.append(p)
+    missing = [p for p in paths if not Path(p).is_file()]
+    verdicts, errors = judge([p for p in paths if p not in missing], rules, profiles)
     errors = [f"{p}: no such file" for p in missing] + errors
     if args.format == "json":
         json.dump([v.to_json() for v in verdicts], sys.stdout, indent=2, allow_nan=False)

@@ -170,3 +170,13 @@ def test_table_output_has_caution_and_reasons(tmp_path: Path) -> None:
     _write_lots(f, {"A1": 500 + np.random.default_rng(1).standard_normal(20)})
     r = lotwarden("check", str(f), "--target", "500")
     assert "A1" in r.out and "PASS" in r.out and "competent authority" in r.out
+
+
+def test_a_folder_stands_for_its_files(tmp_path: Path) -> None:
+    """`check DIR` judges every export file in the folder, as if each were named."""
+    rng = np.random.default_rng(12)
+    _write_lots(tmp_path / "a.csv", {"A": 500 + rng.standard_normal(20)})
+    _write_lots(tmp_path / "b.csv", {"B": 500 + rng.standard_normal(20)})
+    r = lotwarden("check", str(tmp_path), "--target", "500", "--format", "json")
+    assert r.code in (0, 1), r.err
+    assert sorted(o["lot"] for o in r.json()) == ["A", "B"]
