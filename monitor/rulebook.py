@@ -11,12 +11,12 @@ import dataclasses
 import fnmatch
 import hashlib
 import math
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Mapping
 
 from monitor.errors import RuleError
+from monitor.tomlfile import read_toml
 from monitor.units import ALLOWED as ALLOWED_UNITS
 from monitor.units import canonical_unit
 
@@ -111,18 +111,8 @@ class Rule:
 
     @classmethod
     def from_file(cls, path: str | Path) -> "Rule":
-        p = Path(path)
-        try:
-            raw = p.read_bytes()
-        except OSError as exc:
-            raise RuleError(f"cannot read rule file: {exc.strerror or exc}", path=p) from None
-        try:
-            table = tomllib.loads(raw.decode("utf-8-sig"))
-        except UnicodeDecodeError:
-            raise RuleError("not UTF-8 text", path=p, hint="save the rule file as UTF-8") from None
-        except tomllib.TOMLDecodeError as exc:
-            raise RuleError(f"TOML syntax error: {exc}", path=p) from None
-        return _parse_rule(table, str(p), hashlib.sha256(raw).hexdigest())
+        table, digest = read_toml(path, what="rule file", error=RuleError)
+        return _parse_rule(table, str(Path(path)), digest)
 
 
 def load_rules(folder: str | Path) -> list[Rule]:

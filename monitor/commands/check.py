@@ -9,7 +9,6 @@ from __future__ import annotations
 import argparse
 import json
 import sys
-import tomllib
 from pathlib import Path
 from typing import Any
 
@@ -17,6 +16,7 @@ from monitor.engine import SCREENING_NOTE
 from monitor.errors import ConfigError, ExportError, LotwardenError
 from monitor.lot import Verdict
 from monitor.rulebook import ALTERNATIVES, NormalityRule, Rule, load_rules, match_rule
+from monitor.tomlfile import read_toml
 
 DEFAULT_CONFIG = Path("config/lotwarden.toml")
 DEFAULT_RULES = Path("rules")
@@ -83,12 +83,7 @@ def _load_profiles(args: argparse.Namespace) -> tuple[list, dict[str, Any] | Non
     path = Path(args.config) if args.config else (DEFAULT_CONFIG if DEFAULT_CONFIG.is_file() else None)
     if path is None:
         return [], None, None
-    try:
-        table = tomllib.loads(path.read_text(encoding="utf-8-sig"))
-    except OSError as exc:
-        raise ConfigError(f"cannot read config: {exc.strerror or exc}", path=path) from None
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(f"TOML syntax error: {exc}", path=path) from None
+    table, _ = read_toml(path, what="config file")
     profiles_table = table.get("profiles", {})
     if not isinstance(profiles_table, dict):
         raise ConfigError("profiles must be a table of [profiles.<name>] tables", path=path, key="profiles")

@@ -2,10 +2,8 @@
 
 from __future__ import annotations
 
-import hashlib
 import math
 import os
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Mapping
@@ -14,6 +12,7 @@ from monitor.alerts.settings import ALERTS_KEYS, SECTION_KEYS, AlertSettings, pa
 from monitor.errors import ConfigError
 from monitor.ingest.profile import PROFILE_KEYS, FeedProfile
 from monitor.rulebook import Rule, load_rules
+from monitor.tomlfile import read_toml
 
 DEFAULT_INCLUDE = ("*.csv", "*.txt", "*.tsv")
 DEFAULT_IGNORE = (".*", "*.tmp", "*.part", "~*", "*.swp", "*.reason.txt")
@@ -96,17 +95,8 @@ class Config:
 def load_config(path: str | Path) -> Config:
     """Read and validate the config file; any problem raises ConfigError naming the file and key path."""
     p = Path(path)
-    try:
-        raw = p.read_bytes()
-    except OSError as exc:
-        raise ConfigError(f"cannot read config file: {exc.strerror or exc}", path=p) from None
-    try:
-        table = tomllib.loads(raw.decode("utf-8-sig"))
-    except UnicodeDecodeError:
-        raise ConfigError("not UTF-8 text", path=p, hint="save the config file as UTF-8") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(f"TOML syntax error: {exc}", path=p) from None
-    return parse_config(table, source=p, content_hash=hashlib.sha256(raw).hexdigest())
+    table, digest = read_toml(p, what="config file")
+    return parse_config(table, source=p, content_hash=digest)
 
 
 def parse_config(table: Mapping[str, Any], *, source: Path, content_hash: str = "") -> Config:
