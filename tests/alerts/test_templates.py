@@ -121,3 +121,18 @@ def test_broken_templates_at_start_use_shipped_set_and_raise_config_rejected(db_
     kinds = [json.loads(x)["kind"] for x in log_path.read_text().splitlines()]
     assert kinds == ["config-rejected", "hold"]
     assert any("lot S1: HOLD" in r.message.get_body(("plain",)).get_content() for r in srv.received)
+
+
+def test_verdict_lists_filler_heads_when_the_export_names_them() -> None:
+    """The notice shows each filler head's n, mean, offset and p, so the drifting head can be found."""
+    from monitor.alerts.templates import TemplateSet, message_context
+
+    data = {"n": 20, "mean": 502.0, "target": 503.0, "unit": "g", "alpha": 0.01, "verdict": "review",
+            "heads": [{"head": "H1", "n": 10, "mean": 502.6, "sd": 1.1, "offset": -0.4, "p_value": 0.3},
+                      {"head": "H4", "n": 10, "mean": 496.7, "sd": 4.0, "offset": -6.3, "p_value": 0.0004}]}
+    ctx = message_context([{"kind": "review", "dedup_key": "k", "created_at": "2026-11-30T06:00:00+00:00",
+                            "line": "L1", "product": "OAT-500", "lot": "A3", "data": data, "chart_cid": None}],
+                          folded=False, generated_at="2026-11-30T06:00:00+00:00")
+    r = TemplateSet.load().render("review", ctx)
+    assert "H4: n = 10, mean 496.70, offset -6.30 g" in r.text
+    assert "<td>H4</td>" in r.html
