@@ -7,16 +7,7 @@ from pathlib import Path
 
 import pytest
 
-OAT_RULE = """\
-name = "oat-500"
-products = ["OAT-500"]
-target = 500.0
-unit = "g"
-alternative = "two-sided"
-alpha = 0.05
-min_n = 5
-idle_minutes = 30
-"""
+from plant import OAT_RULE
 
 JUICE_RULE = """\
 name = "juice-1l"

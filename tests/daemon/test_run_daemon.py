@@ -8,48 +8,18 @@ import signal
 import sqlite3
 import subprocess
 import sys
-import textwrap
 import time
 from collections import Counter
 from pathlib import Path
 from monitor.polling import wait_until as wait_for
 
-
-RULE = textwrap.dedent("""\
-    name = "oat-500"
-    products = ["OAT-500"]
-    target = 500.0
-    unit = "g"
-    alpha = 0.05
-    min_n = 5
-    idle_minutes = 600
-    """)
-HEADER = "timestamp,line,product,lot,head,value,unit\n"
+import plant
+from plant import HEADER
 
 
 def make_plant(root: Path, settle: float = 0.1) -> Path:
-    for d in ("drop", "rules", "staging"):
-        (root / d).mkdir(parents=True, exist_ok=True)
-    (root / "rules" / "oat-500.toml").write_text(RULE)
-    cfg = root / "lotwarden.toml"
-    cfg.write_text(textwrap.dedent(f"""\
-        rules_dir = "rules"
-
-        [watch]
-        folder = "drop"
-        settle_seconds = {settle}
-        rescan_seconds = 1
-
-        [alerts]
-        drain_seconds = 0.2
-
-        [alerts.log]
-        path = "alerts.jsonl"
-
-        [state]
-        folder = "state"
-        """))
-    return cfg
+    """The shared test plant with quick rescans and lots that never close by idle time during a test."""
+    return plant.make_plant(root, settle=settle, rescan=1.0, idle_minutes=600)
 
 
 class Proc:
@@ -140,7 +110,8 @@ def test_sighup_reloads_rules(tmp_path):
     proc = Proc(cfg, tmp_path / "daemon.log")
     try:
         proc.wait_started()
-        (tmp_path / "rules" / "oat-500.toml").write_text(RULE.replace("alpha = 0.05", "alpha = 0.01"))
+        rule = tmp_path / "rules" / "oat-500.toml"
+        rule.write_text(rule.read_text().replace("alpha = 0.05", "alpha = 0.01"))
         proc.p.send_signal(signal.SIGHUP)
         assert wait_for(lambda: "reloaded" in proc.text()), proc.text()
         cfg.write_text(cfg.read_text() + "\n[watch.nope]\n")

@@ -6,7 +6,6 @@ import io
 import json
 import os
 import sqlite3
-import textwrap
 import threading
 import time
 from pathlib import Path
@@ -15,19 +14,7 @@ import pytest
 
 from monitor.daemon.service import Daemon
 from monitor.polling import wait_until as wait_for
-
-RULE_OAT = textwrap.dedent("""\
-    name = "oat-500"
-    products = ["OAT-500"]
-    target = 500.0
-    unit = "g"
-    alternative = "two-sided"
-    alpha = 0.05
-    min_n = 5
-    idle_minutes = 30
-    """)
-HEADER = "timestamp,line,product,lot,head,value,unit\n"
-
+from plant import HEADER, OAT_RULE as RULE_OAT, csv_rows, make_plant  # noqa: F401  (also used by test_service_verdicts)
 
 @pytest.fixture(autouse=True)
 def _no_leaked_threads():
@@ -41,38 +28,6 @@ def _no_leaked_threads():
             return
         time.sleep(0.05)
     pytest.fail(f"threads left running: {extra}")
-
-
-def make_plant(root: Path, *, settle: float = 0.2, polling: bool = False, extra: str = "") -> Path:
-    for d in ("drop", "rules"):
-        (root / d).mkdir(parents=True, exist_ok=True)
-    (root / "rules" / "oat-500.toml").write_text(RULE_OAT, encoding="utf-8")
-    cfg = root / "lotwarden.toml"
-    cfg.write_text(textwrap.dedent(f"""\
-        rules_dir = "rules"
-
-        [watch]
-        folder = "drop"
-        settle_seconds = {settle}
-        polling = {str(polling).lower()}
-        poll_interval = 0.1
-        rescan_seconds = 30
-
-        [alerts]
-        drain_seconds = 0.2
-
-        [alerts.log]
-        path = "alerts.jsonl"
-
-        [state]
-        folder = "state"
-        """) + textwrap.dedent(extra), encoding="utf-8")
-    return cfg
-
-
-def csv_rows(line: str, lot: str, values, start: int = 0) -> str:
-    return "".join(f"2026-11-30T06:{(start + i) // 60:02d}:{(start + i) % 60:02d},{line},OAT-500,{lot},H1,{float(v)!r},g\n"
-                   for i, v in enumerate(values))
 
 
 def write_atomically(path: Path, text: str) -> None:
