@@ -8,12 +8,24 @@ is the one JSON shape used by ``check --format json``, the alert log and alert t
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
-from typing import Any
+from dataclasses import dataclass, field
+from typing import Any, Mapping
 
 import numpy as np
 
 VERDICTS = ("pass", "hold", "review")
+# Why a row that belongs to a lot carries no usable value (JSON ``excluded_by`` always has all four keys).
+EXCLUSION_REASONS = ("blank", "not_a_number", "not_finite", "dropped_value")
+
+
+def excluded_counts(given: Mapping[str, int] | None, total: int) -> dict[str, int]:
+    """All four exclusion reasons with their counts; non-finite values no reason accounts for are
+    ``not_finite`` (so the counts add up to ``total``, the lot's non-finite values)."""
+    out = {r: int((given or {}).get(r, 0)) for r in EXCLUSION_REASONS}
+    rest = total - sum(out.values())
+    if rest > 0:
+        out["not_finite"] += rest
+    return out
 
 
 @dataclass(frozen=True)
@@ -40,6 +52,11 @@ class LotData:
 
     Exactly one of ``values`` (float64 array) and ``summary`` is set. ``heads`` (same length as
     ``values``, or None) names the filler head / valve of each value.
+
+    A row of the lot that carried no usable value is a NaN in ``values`` (it keeps its place in arrival
+    order); ``excluded_by`` counts those rows per reason in ``EXCLUSION_REASONS`` (NaNs it does not account
+    for count as ``not_finite``). ``unit_assumed`` is True when the values carried no unit (no unit column,
+    no profile ``unit``) and were taken to be in the judging rule's unit.
     """
 
     key: LotKey
@@ -48,6 +65,8 @@ class LotData:
     heads: tuple[str, ...] | None = None
     files: tuple[str, ...] = ()
     unit: str = "g"
+    unit_assumed: bool = False
+    excluded_by: Mapping[str, int] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         if (self.values is None) == (self.summary is None):
@@ -92,6 +111,18 @@ class HeadSummary:
 
 
 @dataclass(frozen=True)
+class WilcoxonInfo:
+    """How a Wilcoxon signed-rank test was computed: exact or normal approximation, zero differences."""
+
+    method: str        # "exact" | "normal approximation"
+    zeros: int         # differences from target of exactly zero, dropped before ranking
+    n_used: int        # differences ranked (n - zeros)
+
+    def to_json(self) -> dict[str, Any]:
+        return {"method": self.method, "zeros": self.zeros, "n_used": self.n_used}
+
+
+@dataclass(frozen=True)
 class Verdict:
     """The engine's decision on one lot, with every number a reader needs to check it.
 
@@ -123,10 +154,13 @@ class Verdict:
     n_for_power: int | None        # smallest n reaching the rule's target_power against that shift
     verdict: str
     reason: str
-    excluded: int = 0              # non-finite values left out by the engine
+    excluded: int = 0              # rows of the lot without a usable value (NaN), left out
     heads: tuple[HeadSummary, ...] = ()
     files: tuple[str, ...] = ()
     average_quantity: Any = None   # monitor.quantity.AverageQuantityResult when the rule has a nominal
+    unit_assumed: bool = False     # the values carried no unit and were taken to be in the rule's unit
+    excluded_by: Mapping[str, int] = field(default_factory=lambda: excluded_counts(None, 0))
+    wilcoxon: WilcoxonInfo | None = None   # set when test == "wilcoxon"
 
     def to_json(self) -> dict[str, Any]:
         """The documented JSON object (``check --format json``, alert log, templates)."""
@@ -143,6 +177,7 @@ class Verdict:
             "sd": _num(self.sd),
             "target": _num(self.target),
             "unit": self.unit,
+            "unit_assumed": self.unit_assumed,
             "alternative": self.alternative,
             "alpha": _num(self.alpha),
             "test": self.test,
@@ -160,6 +195,8 @@ class Verdict:
             "verdict": self.verdict,
             "reason": self.reason,
             "excluded": self.excluded,
+            "excluded_by": excluded_counts(self.excluded_by, self.excluded),
+            "wilcoxon": None if self.wilcoxon is None else self.wilcoxon.to_json(),
             "heads": [h.to_json() for h in self.heads],
             "average_quantity": None if self.average_quantity is None else self.average_quantity.to_json(),
         }
@@ -182,15 +219,19 @@ def unjudged(lot: LotData, reason: str, *, rule_name: str = "", rule_version: st
     if lot.values is not None:
         from monitor.stats.moments import compute_moments
 
-        m = compute_moments(lot.values[np.isfinite(lot.values)])
+        finite = np.isfinite(lot.values)
+        m = compute_moments(lot.values[finite])
         n, mean, sd = m.n, (m.mean if m.n else None), (m.sd if m.n > 1 else None)
+        excluded = int(lot.values.shape[0] - finite.sum())
     else:
         assert lot.summary is not None
         n, mean, sd = lot.summary.n, lot.summary.mean, lot.summary.sd
+        excluded = 0
     return Verdict(
         key=lot.key, rule=rule_name, rule_version=rule_version, n=n, mean=mean, sd=sd, target=target,
         unit=lot.unit, alternative=alternative, alpha=alpha, test=None, statistic=None, df=None,
         p_value=None, critical_value=None, se=None, ci_low=None, ci_high=None, effect_size=None,
         normality=NormalityResult(test=None, statistic=None, p_value=None, passed=None, note="not assessed"),
         power=None, n_for_power=None, verdict="review", reason=reason, files=lot.files,
+        excluded=excluded, unit_assumed=lot.unit_assumed, excluded_by=excluded_counts(lot.excluded_by, excluded),
     )

@@ -50,6 +50,20 @@ def conversion_factor(src: str, dst: str, density: float | None = None) -> float
     return base / df
 
 
+def factor_to_rule_unit(src: str, rule_unit: str, density: float | None = None) -> tuple[float, bool]:
+    """Factor from a value's unit into the judging rule's unit, and whether the unit was assumed.
+
+    ``src == ""`` means the value carried no unit (no unit column, no profile ``unit``): it is taken to be
+    in the rule's unit (factor 1, assumed True). A rule without a unit (ad-hoc) takes the values as they
+    are. Raises ValueError (naming the pair) when a declared unit cannot be converted.
+    """
+    if not src:
+        return 1.0, True
+    if not rule_unit:
+        return 1.0, False
+    return conversion_factor(src, rule_unit, density), False
+
+
 def convert(values: np.ndarray, src: str, dst: str, density: float | None = None) -> np.ndarray:
     """Convert an array of quantities from unit ``src`` to ``dst``."""
     f = conversion_factor(src, dst, density)
