@@ -282,11 +282,10 @@ def _verdict(lot: LotData, rule: Rule, i: int, c: _Columns, values: np.ndarray |
         k = c.excluded[i]
         extras.append(f"{k} non-finite value{'s' if k != 1 else ''} left out")
     aq = None
-    nominal = getattr(rule, "nominal", None)
-    if nominal is not None and lot.values is not None and n > 0:
-        from monitor.quantity import screen_average_quantity
+    if rule.nominal is not None and values is not None and n > 0:   # block owned by monitor.quantity
+        from monitor.quantity import screen_lot
         with np.errstate(all="ignore"):
-            aq = screen_average_quantity(values, nominal)
+            aq = screen_lot(values, rule)
         if not aq.passed:
             extras.append(aq.reason + " (a screen, not a legal verdict)")
             verdict = "hold"

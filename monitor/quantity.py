@@ -19,10 +19,13 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 from decimal import ROUND_CEILING, Decimal
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from scipy import stats
+
+if TYPE_CHECKING:
+    from monitor.rulebook import Rule
 
 # (upper Qn bound inclusive, kind, amount): kind "pct" -> percent of Qn, "abs" -> g or mL.
 _TNE_TABLE = (
@@ -119,3 +122,10 @@ def screen_average_quantity(values: np.ndarray, nominal: float) -> AverageQuanti
     reason = ("average-quantity screen met" if passed else "average-quantity screen fails: " + "; ".join(problems))
     return AverageQuantityResult(nominal, tne, n, mean, mean_limit, mean_ok, below_t1, allowed, below_t2,
                                  passed, reason)
+
+
+def screen_lot(values: np.ndarray, rule: "Rule") -> AverageQuantityResult:
+    """The average-quantity screen of one lot under ``rule`` (which has a ``nominal``); values in the rule's
+    unit, non-finite ones already left out. ``reason`` is the one-line summary shown with every verdict."""
+    assert rule.nominal is not None
+    return screen_average_quantity(values, rule.nominal)
