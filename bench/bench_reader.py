@@ -1,8 +1,9 @@
 """Benchmark: read_export against plain pandas.read_csv of the same file, large and small, as ratios.
 
-A 1,000,000-row canonical export: both are timed in this process, best of 3 with the two interleaved (so
-load from other work on the machine hits both alike); the figure that matters is the ratio (reader /
-baseline). Peak RSS is measured for each reader alone in a fresh subprocess (VmHWM), for read_export (the
+A 1,000,000-row canonical export: both are timed in this process, best of 5 with the two interleaved (so
+load from other work on the machine hits both alike); the figures that matter are the ratios (reader /
+baseline): wall time (the bar: at most 1.0x) and CPU time of the whole process (the reader's parser and
+column work run on several threads, so its CPU time may exceed its wall time). Peak RSS is measured for each reader alone in a fresh subprocess (VmHWM), for read_export (the
 reader owns the file's bytes) and for read_export_bytes with the caller keeping the bytes (as the daemon's
 intake does). A 100-row file: the fixed cost per call, best per-call time of interleaved rounds.
 Run: python bench/bench_reader.py [rows]
@@ -11,6 +12,7 @@ Run: python bench/bench_reader.py [rows]
 from __future__ import annotations
 
 import gc
+import os
 import resource
 import subprocess
 import sys
@@ -24,7 +26,8 @@ import pandas as pd
 
 from monitor.ingest import read_export
 
-TARGET_RATIO = 1.5
+ROUNDS = 5  # best of this many interleaved rounds on the large file
+TARGET_RATIO = 1.0  # wall time of read_export / pandas.read_csv on the 1,000,000-row file (issue 7)
 SMALL_ROWS = 100
 SMALL_TARGET_MS = 1.0  # the reader's own budget per 100-row file (the daemon's backlog figure needs it)
 
@@ -49,8 +52,8 @@ def write_export(path: Path, rows: int, seed: int = 20261201) -> None:
 def interleaved_best(runs: int, a: Callable[[], object], b: Callable[[], object]) -> dict[str, tuple[float, float]]:
     """Best wall and CPU time of ``a`` and of ``b`` over ``runs`` rounds, each round timing a then b.
 
-    CPU time (time.process_time) is reported too: both readers run on one thread here, and CPU time
-    varies far less than wall time when other work shares the cores.
+    CPU time (time.process_time, all threads of the process) is reported too: it shows the work done, while
+    wall time shows what the multi-threaded parser gains from a second core.
     """
     best = {"wall": [float("inf")] * 2, "cpu": [float("inf")] * 2}
     for _ in range(runs):
@@ -139,15 +142,19 @@ def main(rows: int = 1_000_000) -> int:
         got = read_export(path)
         assert len(got.rows) == rows and not got.bad_rows, "benchmark file must read cleanly"
         del got
-        times = interleaved_best(3, lambda: pd.read_csv(path), lambda: read_export(path))
+        times = interleaved_best(ROUNDS, lambda: pd.read_csv(path), lambda: read_export(path))
         rss = {which: peak_rss_mb(which, path) for which in ("pandas", "reader", "reader-bytes")}
         small = small_file_report(Path(tmp))
-    print(f"file: {rows:,} rows, {size_mb:.1f} MB; best of 3, interleaved")
+    print(f"file: {rows:,} rows, {size_mb:.1f} MB; best of {ROUNDS}, interleaved; {os.cpu_count()} CPU(s), load average "
+          f"{os.getloadavg()[0]:.2f} at the end")
     for clock, (base, ours) in times.items():
         ratio = ours / base
+        bar = (f"(bar <= {TARGET_RATIO}x: {'met' if ratio <= TARGET_RATIO else 'NOT met'})" if clock == "wall"
+               else "(no bar: the work done, all threads)")
         print(f"[{clock:>4}] pandas.read_csv {base:.3f} s ({rows / base:,.0f} rows/s) | read_export {ours:.3f} s "
-              f"({rows / ours:,.0f} rows/s) | ratio {ratio:.2f}x "
-              f"(target < {TARGET_RATIO}x: {'met' if ratio < TARGET_RATIO else 'NOT met'})")
+              f"({rows / ours:,.0f} rows/s) | ratio {ratio:.2f}x {bar}")
+    wall, cpu = (times[k][1] / times[k][0] for k in ("wall", "cpu"))
+    print(f"wall ratio {wall:.2f}x, CPU ratio {cpu:.2f}x")
     for which, (before, after) in rss.items():
         what = "after imports + the caller's bytes" if which == "reader-bytes" else "after imports"
         print(f"peak RSS {which:<12}: {after:.0f} MB ({after - before:.0f} MB above the {before:.0f} MB {what})")

@@ -1,4 +1,4 @@
-"""Applies a rule to a lot: gates (min n, normality), the location test, interval, power -> Verdict.
+"""Applies a rule to a lot: gates (units, min n, spread, normality), the location test, interval, power -> Verdict.
 
 Pure: no I/O, no clock, no logging. ``evaluate`` judges one lot; ``evaluate_many`` judges many lots of one
 rule at once: moments are numpy segment reductions over the lots' values concatenated end to end,
@@ -7,13 +7,32 @@ Shapiro–Wilk runs on one matrix per lot size, t / z tests and power are scipy 
 values, so a lot gets the same Verdict alone or in any batch.
 
 Gates, in order (each sends the lot to "review" with a plain reason, and no test verdict is given):
-non-finite values are left out and counted; n < 2; n < ``rule.min_n``; no spread (all values equal, or a
-spread at the floating-point resolution of the mean); then the normality gate. Normality (when enabled):
-Shapiro–Wilk for 3 <= n <= 5000. Above 5000 it is not assessed, by choice: Royston's p-value approximation
-is not valid there, and by the central limit theorem the t-test on the mean of more than 5000 units is
-robust to the non-normality fillers produce, so the lot proceeds to the t-test with a note. Lots whose
-normality cannot be assessed (summaries, n = 2) follow ``normality.on_unassessed``. A rule with a
-``nominal`` also gets the average-quantity screen (monitor.quantity); a failed screen holds the lot.
+rows without a usable value (NaN or ±inf) are left out and counted, per reason (``LotData.excluded_by``);
+an unusable summary; a unit mix-up; n < 2; n < ``rule.min_n``; a mean or sd that overflows; no spread (all
+values equal, or a spread at the floating-point resolution of the mean; t rules only); then the normality
+gate.
+
+Unit mix-up: a lot whose mean is off its target by about the factor of one unit conversion (within 5 %)
+was very likely exported in another unit than the rule's (kg values under a g rule give a mean near
+target/1000). Candidate units are mg, g, kg, oz, lb (mass) and mL, L, fl oz (volume), mass <-> volume at a
+density of 1 g/mL; factors inside [0.5, 2] (g vs mL, oz vs fl oz) are left out, as they cannot be told from
+a real shift; a unit of the rule's kind wins a tie (under a mL rule a mean near target/1000 looks like L).
+The gate comes right after the mean is known and before the count gates: a 3-unit lot in kg under a g rule
+is first of all a unit problem (more units will not fix it). No test and no average-quantity screen run on
+such a lot (its values are not in the rule's unit). The gate needs a positive target and mean.
+
+The no-spread gate is for the t-test only (its statistic divides by the sample sd): a known-sd (z) rule
+judges a lot of identical values, whose normality is then not assessed (``normality.on_unassessed``).
+Normality (when enabled): Shapiro–Wilk for 3 <= n <= 5000. Above 5000 it is not assessed, by choice: Royston's
+p-value approximation is not valid there, and by the central limit theorem the t-test on the mean of more
+than 5000 units is robust to the non-normality fillers produce, so the lot proceeds to the t-test with a
+note. Lots whose normality cannot be assessed (summaries, n = 2, no spread) follow
+``normality.on_unassessed``. A rule with a ``nominal`` also gets the average-quantity screen
+(monitor.quantity); a failed screen holds the lot. When a Shapiro–Wilk failure sends a lot to the Wilcoxon
+signed-rank test, the lot is judged on its pseudo-median (a test of location, monitor.stats.wilcoxon).
+
+A lot whose values carried no unit (``LotData.unit_assumed``) says so in its reason: the values were taken
+to be in the rule's unit.
 
 lotwarden screens lots; net-quantity compliance is decided under local weights-and-measures law by the
 competent authority (``SCREENING_NOTE``).
@@ -21,11 +40,23 @@ competent authority (``SCREENING_NOTE``).
 
 from __future__ import annotations
 
-from typing import Any, Sequence
+import itertools
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from functools import lru_cache
+from typing import Any
 
 import numpy as np
 
-from monitor.lot import HeadSummary, LotData, NormalityResult, Verdict
+from monitor.lot import (
+    HeadSummary,
+    LotData,
+    NormalityResult,
+    Verdict,
+    WilcoxonInfo,
+    excluded_counts,
+)
 from monitor.rulebook import Rule
 from monitor.stats.location import t_test_arrays, z_test_arrays
 from monitor.stats.moments import segment_moments
@@ -33,8 +64,16 @@ from monitor.stats.normality import MAX_N as SW_MAX_N
 from monitor.stats.normality import MIN_N as SW_MIN_N
 from monitor.stats.normality import shapiro_wilk_rows
 from monitor.stats.power import n_for_power, power
-from monitor.stats.wilcoxon import wilcoxon_test
-from monitor.stats.wording import format_p, format_quantity, format_statistic, quantity_decimals
+from monitor.stats.wilcoxon import signed_differences, wilcoxon_test
+from monitor.stats.wording import (
+    format_excluded,
+    format_p,
+    format_quantity,
+    format_statistic,
+    plural,
+    quantity_decimals,
+)
+from monitor.units import UNITS, canonical_unit
 
 __all__ = ["SCREENING_NOTE", "evaluate", "evaluate_many"]
 
@@ -44,7 +83,14 @@ NOTE_LARGE_N = "not assessed: n > 5000; the t-test on the mean relies on the cen
 _RESOLUTION_ULPS = 8.0     # an sd below this many ulps of the mean is rounding noise, not spread
 
 # gate codes
-_OK, _N_LT2, _MIN_N, _FLAT, _BAD = 0, 1, 2, 3, 4
+_OK, _N_LT2, _MIN_N, _FLAT, _BAD, _UNIT = 0, 1, 2, 3, 4, 5
+
+# Units a mix-up may have given the values: (kind, factor to g or mL). 1 lb = 0.45359237 kg exactly
+# (NIST SP 811, appendix B); the rest as monitor.units. Mass <-> volume at 1 g/mL.
+_MIXUP_UNITS: dict[str, tuple[str, float]] = {**UNITS, "lb": ("mass", 453.59237)}
+_MIXUP_TOLERANCE = 0.05            # |mean·factor/target − 1| within 5 %
+_MIXUP_EXCLUDED = (0.5, 2.0)       # factors this close to 1 cannot be told from a real shift
+_NO_EXCLUSIONS = excluded_counts(None, 0)
 
 
 def evaluate(lot: LotData, rule: Rule) -> Verdict:
@@ -78,7 +124,7 @@ def evaluate_many(lots: Sequence[LotData], rule: Rule) -> list[Verdict]:
         hi[nonempty] = np.maximum.reduceat(x, starts[nonempty])
 
     summary_ok = np.ones(k, dtype=bool)
-    for i in np.flatnonzero(~has_values):
+    for i in np.flatnonzero(~has_values).tolist():
         s = lots[i].summary
         assert s is not None
         whole = isinstance(s.n, (int, np.integer)) or (isinstance(s.n, float) and s.n.is_integer())
@@ -93,21 +139,25 @@ def evaluate_many(lots: Sequence[LotData], rule: Rule) -> list[Verdict]:
 
     with np.errstate(all="ignore"):
         sd = np.sqrt(var)
-        flat = np.where(has_values, hi == lo, sd == 0) | (sd <= _RESOLUTION_ULPS * np.spacing(np.abs(mean)))
+        flat = (np.where(has_values, hi == lo, sd == 0) | (sd <= _RESOLUTION_ULPS * np.spacing(np.abs(mean)))) \
+            & (n >= 2)
+    mixup = _unit_mixup(mean, n, rule.target, [lot.unit for lot in lots])
     gate = np.full(k, _OK)
-    gate[flat & (n >= 2)] = _FLAT
+    if rule.known_sd is None:                                   # the z-test needs no sample spread
+        gate[flat] = _FLAT
     gate[(n >= 2) & ~(np.isfinite(mean) & np.isfinite(var))] = _BAD
     gate[n < rule.min_n] = _MIN_N
     gate[n < 2] = _N_LT2
+    gate[mixup >= 0] = _UNIT
     gate[~summary_ok] = _BAD
     ok = gate == _OK
 
-    sw_w, sw_p = _shapiro_by_size(x, starts, n, ok & has_values & rule.normality.enabled)
+    sw_w, sw_p = _shapiro_by_size(x, starts, n, ok & has_values & ~flat & rule.normality.enabled)
     sw_failed = ok & (sw_p < rule.normality.alpha)
 
     tested = ok.copy()
     if rule.normality.enabled and rule.normality.on_unassessed == "review":
-        tested &= ~(~has_values | (n < SW_MIN_N))
+        tested &= ~(~has_values | (n < SW_MIN_N) | flat)
     if rule.normality.enabled and rule.normality.on_fail == "review":
         tested &= ~sw_failed
     use_wilcoxon = tested & sw_failed & (rule.normality.on_fail == "wilcoxon") & has_values
@@ -122,21 +172,72 @@ def evaluate_many(lots: Sequence[LotData], rule: Rule) -> list[Verdict]:
     cols = {key: np.asarray(v).tolist() for key, v in res.items()}
     ctx = _Columns(n=n.tolist(), mean=mean.tolist(), sd=sd.tolist(), excluded=excluded.tolist(),
                    gate=gate.tolist(), sw_w=sw_w.tolist(), sw_p=sw_p.tolist(), power=pw.tolist(),
-                   nfp=nfp.tolist(), test=cols)
+                   nfp=nfp.tolist(), test=cols, flat=flat.tolist(), mixup=mixup.tolist())
     heads = _head_breakdown(lots, raw_len, rule)
     out: list[Verdict] = []
     for i, lot in enumerate(lots):
-        values = x[starts[i]:starts[i] + n[i]] if lot.values is not None else None
+        # a unit mix-up's values are not in the rule's unit: nothing is computed from them (no screen either)
+        usable = lot.values is not None and gate[i] != _UNIT
+        values = x[starts[i]:starts[i] + n[i]] if usable else None
         out.append(_verdict(lot, rule, i, ctx, values, bool(parametric[i]), bool(use_wilcoxon[i]),
                             heads.get(i, ())))
     return out
 
 
+@dataclass(frozen=True)
 class _Columns:
     """Per-lot numbers of a batch as Python lists (fast scalar access while building Verdicts)."""
 
-    def __init__(self, **cols: Any) -> None:
-        self.__dict__.update(cols)
+    n: list[int]
+    mean: list[float]
+    sd: list[float]
+    excluded: list[int]
+    gate: list[int]
+    sw_w: list[float]
+    sw_p: list[float]
+    power: list[float]
+    nfp: list[int]
+    test: dict[str, list[float]]
+    flat: list[bool]
+    mixup: list[int]
+
+
+@lru_cache(maxsize=32)
+def _mixup_candidates(unit: str) -> tuple[tuple[str, float], ...]:
+    """(unit, factor into ``unit``) a mix-up could stem from, units of ``unit``'s own kind first."""
+    canon = canonical_unit(unit) if unit else None
+    if canon is None:
+        return ()
+    kind, base = _MIXUP_UNITS[canon]
+    out = [(name, f / base, k == kind) for name, (k, f) in _MIXUP_UNITS.items()
+           if not _MIXUP_EXCLUDED[0] <= f / base <= _MIXUP_EXCLUDED[1]]
+    out.sort(key=lambda c: not c[2])                             # stable: own kind first
+    return tuple((name, factor) for name, factor, _ in out)
+
+
+def _unit_mixup(mean: np.ndarray, n: np.ndarray, target: float, units: list[str]) -> np.ndarray:
+    """Per lot, the index into ``_mixup_candidates(unit)`` of the unit its mean looks like, or -1.
+
+    The values look like unit u when mean · factor(u -> rule unit) is within 5 % of the target; of several,
+    the closest wins (the first listed on a tie).
+    """
+    out = np.full(mean.shape[0], -1, dtype=np.int64)
+    if not (np.isfinite(target) and target > 0):
+        return out
+    with np.errstate(all="ignore"):
+        ratio = mean / target
+    usable = (n >= 1) & np.isfinite(ratio) & (ratio > 0)
+    if not usable.any():
+        return out
+    names = np.array(units, dtype=object)
+    for unit in set(units):
+        rows = usable & (names == unit) if len(set(units)) > 1 else usable
+        best = np.full(mean.shape[0], _MIXUP_TOLERANCE)
+        for j, (_, factor) in enumerate(_mixup_candidates(unit)):
+            err = np.abs(ratio * factor - 1.0)
+            hit = rows & (err <= _MIXUP_TOLERANCE) & ((out < 0) | (err < best))
+            out[hit], best[hit] = j, err[hit]
+    return out
 
 
 def _shapiro_by_size(x: np.ndarray, starts: np.ndarray, n: np.ndarray,
@@ -151,7 +252,7 @@ def _shapiro_by_size(x: np.ndarray, starts: np.ndarray, n: np.ndarray,
     order = np.argsort(sizes, kind="stable")
     idx, sizes = idx[order], sizes[order]
     bounds = np.flatnonzero(np.r_[True, sizes[1:] != sizes[:-1], True])
-    for a, b in zip(bounds[:-1], bounds[1:]):
+    for a, b in itertools.pairwise(bounds.tolist()):
         group = idx[a:b]
         size = int(sizes[a])
         rows = np.sort(x[starts[group][:, None] + np.arange(size)], axis=1)
@@ -215,7 +316,7 @@ def _standout_head(heads: tuple[HeadSummary, ...], alpha: float) -> HeadSummary 
     return None
 
 
-def _normality(lot: LotData, rule: Rule, gate: int, n: int, w: float, p: float) -> NormalityResult:
+def _normality(lot: LotData, rule: Rule, gate: int, n: int, w: float, p: float, flat: bool) -> NormalityResult:
     nr = rule.normality
     if not nr.enabled:
         return NormalityResult(test=None, statistic=None, p_value=None, passed=None, note="gate off")
@@ -228,6 +329,9 @@ def _normality(lot: LotData, rule: Rule, gate: int, n: int, w: float, p: float) 
     if n < SW_MIN_N:
         return NormalityResult(test=None, statistic=None, p_value=None, passed=None,
                                note=f"not assessed: n < {SW_MIN_N}; on_unassessed = {nr.on_unassessed}")
+    if flat:
+        return NormalityResult(test=None, statistic=None, p_value=None, passed=None,
+                               note=f"not assessed: the values do not vary; on_unassessed = {nr.on_unassessed}")
     if n > SW_MAX_N:
         return NormalityResult(test="shapiro", statistic=None, p_value=None, passed=None, note=NOTE_LARGE_N)
     passed = p >= nr.alpha
@@ -235,8 +339,13 @@ def _normality(lot: LotData, rule: Rule, gate: int, n: int, w: float, p: float) 
                            note=f"Shapiro–Wilk at alpha {nr.alpha:g}: {'passed' if passed else 'failed'}")
 
 
+def _sw_p(normality: NormalityResult) -> float:
+    """The Shapiro–Wilk p-value of an assessed gate (NaN if, impossibly, it is missing)."""
+    return math.nan if normality.p_value is None else normality.p_value
+
+
 def _opt(v: float) -> float | None:
-    return v if v == v and v not in (float("inf"), float("-inf")) else None
+    return v if math.isfinite(v) else None
 
 
 def _verdict(lot: LotData, rule: Rule, i: int, c: _Columns, values: np.ndarray | None, parametric: bool,
@@ -246,14 +355,16 @@ def _verdict(lot: LotData, rule: Rule, i: int, c: _Columns, values: np.ndarray |
     dec = quantity_decimals(_opt(sd))
     def q(v: float, measured: bool = True) -> str:
         """A measured quantity keeps its decimals (342.0); a set one (target, shift) drops trailing zeros."""
-        return f"{format_quantity(v, dec, strip=not measured)} {unit}"
-    normality = _normality(lot, rule, gate, n, c.sw_w[i], c.sw_p[i])
+        text = format_quantity(v, dec, strip=not measured)
+        return f"{text} {unit}" if unit else text
+    normality = _normality(lot, rule, gate, n, c.sw_w[i], c.sw_p[i], c.flat[i])
     standout = _standout_head(head_rows, rule.alpha)
     pw = _opt(c.power[i])
     nfp = c.nfp[i] if c.nfp[i] > 0 else None
-    fields: dict[str, Any] = dict(test=None, statistic=None, df=None, p_value=None, critical_value=None,
-                                  se=None, ci_low=None, ci_high=None)
+    fields: dict[str, Any] = {"test": None, "statistic": None, "df": None, "p_value": None,
+                              "critical_value": None, "se": None, "ci_low": None, "ci_high": None}
     extras: list[str] = []
+    wilcoxon_info = None
     if parametric:
         t = c.test
         fields.update(test="z" if rule.known_sd is not None else "t", statistic=t["statistic"][i],
@@ -262,44 +373,59 @@ def _verdict(lot: LotData, rule: Rule, i: int, c: _Columns, values: np.ndarray |
         verdict = "hold" if fields["p_value"] < rule.alpha else "pass"
         reason = _test_reason(verdict, "mean", mean, rule, fields, q, pw, nfp)
         if normality.passed is False:
-            extras.append(f"Shapiro–Wilk rejected normality ({format_p(normality.p_value, rule.normality.alpha)})"
+            extras.append(f"Shapiro–Wilk rejected normality ({format_p(_sw_p(normality), rule.normality.alpha)})"
                           " but the rule ignores that")
-    elif wilcoxon:
-        assert values is not None
+    elif wilcoxon and values is not None and (signed_differences(values, rule.target) != 0).any():
         r = wilcoxon_test(values, rule.target, rule.alternative, rule.alpha)
         fields.update(test="wilcoxon", statistic=r.statistic, p_value=r.p_value)
+        wilcoxon_info = WilcoxonInfo(method=r.method, zeros=r.zeros, n_used=r.n_used)
         verdict = "hold" if r.p_value < rule.alpha else "pass"
-        reason = _test_reason(verdict, "median", r.estimate, rule, fields, q, None, None)
-        extras.append(f"Wilcoxon signed-rank test of the median, as Shapiro–Wilk rejected normality "
-                      f"({format_p(normality.p_value, rule.normality.alpha)})")
+        reason = _test_reason(verdict, "pseudo-median", r.estimate, rule, fields, q, None, None)
+        how = "p exact" if r.method == "exact" else f"p by {r.method}"
+        dropped = f", {plural(r.zeros, 'value')} on target left out" if r.zeros else ""
+        extras.append(f"Wilcoxon signed-rank test of location (pseudo-median), {how}{dropped}, as Shapiro–Wilk "
+                      f"rejected normality ({format_p(_sw_p(normality), rule.normality.alpha)})")
+        pw = nfp = None
+    elif wilcoxon:
+        verdict = "review"
+        reason = (f"every value equals the target {q(rule.target, False)} to the data's decimals: "
+                  "the signed-rank test has nothing to rank")
         pw = nfp = None
     else:
         verdict = "review"
-        reason = _review_reason(lot, rule, gate, n, mean, sd, normality, q)
-    if standout is not None and verdict != "pass":
+        reason = _review_reason(lot, rule, gate, n, mean, sd, normality, q, c.mixup[i])
+    if standout is not None and verdict != "pass" and gate != _UNIT:
         extras.append(f"head {standout.head} is furthest off ({format_quantity(standout.offset, dec)} {unit})")
+    excluded_by = (excluded_counts(lot.excluded_by, c.excluded[i]) if c.excluded[i] or lot.excluded_by
+                   else _NO_EXCLUSIONS.copy())                      # the common case, without the general path
+    if lot.unit_assumed:
+        extras.append(f"values carry no unit: taken to be in {unit}, the rule's unit" if unit else
+                      "values and target carry no unit (give the rule a unit to have it checked)")
     if c.excluded[i]:
-        k = c.excluded[i]
-        extras.append(f"{k} non-finite value{'s' if k != 1 else ''} left out")
+        extras.append(format_excluded(excluded_by))
     aq = None
     if rule.nominal is not None and values is not None and n > 0:   # block owned by monitor.quantity
         from monitor.quantity import screen_lot
         with np.errstate(all="ignore"):
             aq = screen_lot(values, rule)
-        if not aq.passed:
-            extras.append(aq.reason + " (a screen, not a legal verdict)")
+        extras.append(aq.reason + " (a screen, not a legal verdict)")   # shown on pass too
+        if aq.needs_review:
+            if verdict != "hold":
+                verdict = "review"
+        elif not aq.passed:
             verdict = "hold"
     if extras:
         reason += "; " + "; ".join(extras)
     effect = None
-    if n >= 2 and mean == mean:
+    if n >= 2 and not math.isnan(mean) and gate != _UNIT:
         spread = rule.known_sd if rule.known_sd is not None else sd
         effect = _opt((mean - rule.target) / spread) if spread and spread > 0 else None
     return Verdict(key=lot.key, rule=rule.name, rule_version=rule.version, n=n, mean=_opt(mean),
                    sd=_opt(sd) if n >= 2 else None, target=rule.target, unit=unit, alternative=rule.alternative,
                    alpha=rule.alpha, effect_size=effect, normality=normality, power=pw, n_for_power=nfp,
                    verdict=verdict, reason=reason, excluded=c.excluded[i], heads=head_rows, files=lot.files,
-                   average_quantity=aq, **fields)
+                   average_quantity=aq, unit_assumed=lot.unit_assumed, excluded_by=excluded_by,
+                   wilcoxon=wilcoxon_info, **fields)
 
 
 def _test_reason(verdict: str, what: str, estimate: float, rule: Rule, f: dict[str, Any], q: Any,
@@ -322,16 +448,40 @@ def _test_reason(verdict: str, what: str, estimate: float, rule: Rule, f: dict[s
     return text + f"; power {pw:.2f} to detect {shift} — too few units to rule that shift out; {more}"
 
 
+def _summary_problem(lot: LotData) -> str:
+    """What makes a lot summary unusable, naming the field and its value."""
+    s = lot.summary
+    if s is None:
+        return "no data"
+    whole = isinstance(s.n, (int, np.integer)) or (isinstance(s.n, float) and s.n.is_integer())
+    if not whole or s.n < 0:
+        return f"n {s.n!r} is not a whole number >= 0"
+    if not math.isfinite(s.mean):
+        return f"mean {s.mean!r} is not finite"
+    if not math.isfinite(s.sd):
+        return f"sd {s.sd!r} is not finite (n = {s.n})"
+    if s.sd < 0:
+        return f"sd {s.sd!r} is negative"
+    return f"sd {s.sd!r} {lot.unit} is too large to square (overflow)"
+
+
 def _review_reason(lot: LotData, rule: Rule, gate: int, n: int, mean: float, sd: float,
-                   normality: NormalityResult, q: Any) -> str:
+                   normality: NormalityResult, q: Any, mixup: int) -> str:
+    if gate == _UNIT:
+        likely = _mixup_candidates(lot.unit)[mixup][0]
+        shown = format_quantity(mean, max(0, 3 - math.floor(math.log10(mean))), strip=False)   # 4 digits
+        return (f"values look like {likely}, not {lot.unit}: mean {shown} against target "
+                f"{format_quantity(rule.target, 6)} {lot.unit}; no test was run (check the unit of the export "
+                "or its profile)")
     if gate == _BAD:
         if lot.values is None:
-            s = lot.summary
-            return f"the lot summary is not usable (n={s.n!r}, mean={s.mean!r}, sd={s.sd!r})" if s else "no data"
+            return f"the lot summary is not usable: {_summary_problem(lot)}"
         return "the values are too large in magnitude to compute a mean and sd (overflow)"
     if gate == _N_LT2:
         if n == 0:
             return "no usable values to judge"
+        if rule.known_sd is not None:
+            return f"only 1 unit; the rule needs at least {rule.min_n} to judge"
         return "only 1 unit; at least 2 are needed for a standard deviation"
     if gate == _MIN_N:
         return f"only {n} units; the rule needs at least {rule.min_n} to judge"
@@ -341,9 +491,10 @@ def _review_reason(lot: LotData, rule: Rule, gate: int, n: int, mean: float, sd:
                     "the t statistic is undefined")
         return (f"the {n} values do not vary beyond rounding (sd {sd:.3g} {lot.unit} at mean {q(mean)}): "
                 "the t statistic is meaningless")
+    test = "t" if rule.known_sd is None else "z"
     if normality.passed is False:
         return (f"Shapiro–Wilk rejects normality (W = {normality.statistic:.3f}, "
-                f"{format_p(normality.p_value, rule.normality.alpha)}); the t-test may mislead here")
+                f"{format_p(_sw_p(normality), rule.normality.alpha)}); the {test}-test may mislead here")
     if lot.values is None:
         return "normality cannot be assessed from a summary (n, mean, sd) and the rule asks for review"
     return f"normality cannot be assessed with only {n} units and the rule asks for review"

@@ -11,9 +11,10 @@ import dataclasses
 import fnmatch
 import hashlib
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any
 
 from monitor.errors import RuleError
 from monitor.tomlfile import read_toml
@@ -37,8 +38,24 @@ RULE_KEYS: dict[str, tuple[Any, str]] = {
     "shift_of_interest": (None, "mean shift (in `unit`, > 0) whose detection power is reported"),
     "target_power": (0.8, "power the reported sample-size-for-power aims at, in (0, 1)"),
     "idle_minutes": (30.0, "daemon: a lot with no new values for this long is closed and judged (> 0)"),
-    "nominal": (None, "nominal quantity on the label (in `unit`, >= 5): adds the average-quantity screen "
-                      "(TNE, T1/T2 packs, mean criterion); a failed screen holds the lot"),
+    "nominal": (None, (
+        "nominal quantity on the label, in `unit` (any unit: `kg` = 1 is 1000 g; 5 g/mL to 25 kg/L after "
+        "conversion): adds the average-quantity screen (TNE, T1/T2 packs, mean); a failed screen holds the lot, "
+        "an undecided one sends it to review; a screen, not a legal verdict")),
+    "inspection": ("full", (
+        '"full": every pack of the lot is in the export (packers\' rules: mean >= nominal, at most `t1_share` '
+        'below T1, none below T2) | "sample": the export is a sample of a batch of `batch_size` packs (reference '
+        'test, SI 2006/659 Sch. 2); needs `nominal`')),
+    "batch_size": (None, (
+        'packs in the batch the sample was drawn from (whole number >= 1); required for inspection = "sample", '
+        "which picks the published plan by it")),
+    "sampling_plan": ("single", (
+        'plan for inspection = "sample": "single" (SI 2006/659 Sch. 2 ¶3.3) | "double" (¶3.7 ff., Directive '
+        '76/211/EEC Annex II 2.2.1) | "destructive" (20 packs, batches >= 100; Annex II 2.2.2)')),
+    "t1_share": (0.025, (
+        'inspection = "full": share of packs allowed below T1 (nominal - TNE), in [0, 0.025]; 0.025 is the UK '
+        "2.5 % (trading standards guidance on SI 2006/659); Germany's Fertigpackungsverordnung §9(3) allows "
+        "2 % (0.02)")),
     "description": ("", "free text for people"),
 }
 NORMALITY_KEYS: dict[str, tuple[Any, str]] = {
@@ -76,6 +93,10 @@ class Rule:
     target_power: float = 0.8
     idle_minutes: float = 30.0
     nominal: float | None = None
+    inspection: str = "full"
+    batch_size: int | None = None
+    sampling_plan: str = "single"
+    t1_share: float = 0.025
     description: str = ""
     normality: NormalityRule = field(default_factory=NormalityRule)
     source: str | None = None
@@ -90,11 +111,11 @@ class Rule:
         """Short content hash that names this version of the rule in audit records."""
         return self.content_hash[:12]
 
-    def replace(self, **changes: Any) -> "Rule":
+    def replace(self, **changes: Any) -> Rule:
         return dataclasses.replace(self, **changes)
 
     @classmethod
-    def adhoc(cls, **overrides: Any) -> "Rule":
+    def adhoc(cls, **overrides: Any) -> Rule:
         """A rule from command-line options, with the documented defaults for the rest."""
         normality = overrides.pop("normality", NormalityRule())
         values = {k: v for k, v in overrides.items() if v is not None}
@@ -105,12 +126,12 @@ class Rule:
         return dataclasses.replace(rule, content_hash=hashlib.sha256(blob).hexdigest())
 
     @classmethod
-    def from_toml(cls, table: Mapping[str, Any], *, source: str = "<rule>", content_hash: str = "") -> "Rule":
+    def from_toml(cls, table: Mapping[str, Any], *, source: str = "<rule>", content_hash: str = "") -> Rule:
         """Validate a parsed TOML table; errors name ``source`` and the key path."""
         return _parse_rule(table, source, content_hash)
 
     @classmethod
-    def from_file(cls, path: str | Path) -> "Rule":
+    def from_file(cls, path: str | Path) -> Rule:
         table, digest = read_toml(path, what="rule file", error=RuleError)
         return _parse_rule(table, str(Path(path)), digest)
 
@@ -167,7 +188,7 @@ def _choice(table: Mapping[str, Any], key: str, allowed: tuple[str, ...], source
     v = table[key]
     if v not in allowed:
         raise _fail(source, keypath, f"{key} = {v!r} — must be one of " + ", ".join(repr(a) for a in allowed))
-    return v
+    return str(v)
 
 
 def _unknown(table: Mapping[str, Any], known: Mapping[str, Any], source: str, prefix: str) -> None:
@@ -175,6 +196,65 @@ def _unknown(table: Mapping[str, Any], known: Mapping[str, Any], source: str, pr
         if k not in known:
             raise _fail(source, prefix + k, f"unknown key {k!r}",
                         hint="allowed keys: " + ", ".join(sorted(known)))
+
+
+def _whole(table: Mapping[str, Any], key: str, lo: int, source: str) -> int:
+    v = table[key]
+    if isinstance(v, bool) or not isinstance(v, int) or v < lo:
+        raise _fail(source, key, f"{key} = {v!r} — must be a whole number >= {lo}")
+    return v
+
+
+def _quantity_keys(table: Mapping[str, Any], source: str, unit: str) -> dict[str, Any]:
+    """The average-quantity keys (nominal, inspection, batch_size, sampling_plan, t1_share), cross-checked."""
+    from monitor.quantity import (
+        INSPECTIONS,
+        SAMPLING_PLANS,
+        TABLE_MAX,
+        TABLE_MIN,
+        nominal_in_table_unit,
+    )
+
+    out: dict[str, Any] = {}
+    if "nominal" not in table:
+        for key in ("inspection", "batch_size", "sampling_plan", "t1_share"):
+            if key in table:
+                raise _fail(source, key, f"{key} is set but the rule has no nominal",
+                            hint="set nominal (the quantity on the label) to use the average-quantity screen")
+        return out
+    v = _number(table, "nominal", source, "nominal")
+    if not v > 0:
+        raise _fail(source, "nominal", f"nominal = {v:g} — must be > 0")
+    q, base = nominal_in_table_unit(v, unit)
+    if not (TABLE_MIN <= q <= TABLE_MAX):
+        raise _fail(source, "nominal", f"nominal = {v:g} {unit} is {q.normalize():f} {base} — outside the published "
+                    "TNE table (5 g/mL to 25 kg/L)", hint="no tolerable negative error is published for it; "
+                    "remove nominal for this rule")
+    out["nominal"] = v
+    inspection = _choice(table, "inspection", INSPECTIONS, source, "inspection") if "inspection" in table else "full"
+    out["inspection"] = inspection
+    if inspection == "sample":
+        if "batch_size" not in table:
+            raise _fail(source, "batch_size", 'missing batch_size — inspection = "sample" needs the packs in the batch',
+                        hint=RULE_KEYS["batch_size"][1])
+        out["batch_size"] = _whole(table, "batch_size", 1, source)
+        if "sampling_plan" in table:
+            out["sampling_plan"] = _choice(table, "sampling_plan", SAMPLING_PLANS, source, "sampling_plan")
+        if out.get("sampling_plan") == "destructive" and out["batch_size"] < 100:
+            raise _fail(source, "sampling_plan", f'sampling_plan = "destructive" with batch_size = {out["batch_size"]}'
+                        " — destructive testing is for batches of 100 or more (Directive 76/211/EEC Annex II 2.2.2)")
+        if "t1_share" in table:
+            raise _fail(source, "t1_share", 't1_share is for inspection = "full"',
+                        hint='under "sample" the published plan for batch_size sets the packs allowed below T1')
+    else:
+        for key in ("batch_size", "sampling_plan"):
+            if key in table:
+                raise _fail(source, key, f'{key} is for inspection = "sample" (this rule inspects every pack)',
+                            hint='set inspection = "sample" if the export is a sample of a batch')
+        if "t1_share" in table:
+            out["t1_share"] = _in_range(_number(table, "t1_share", source, "t1_share"), 0, 0.025, source,
+                                        "t1_share", lo_open=False)
+    return out
 
 
 def _parse_rule(table: Mapping[str, Any], source: str, content_hash: str) -> Rule:
@@ -209,11 +289,7 @@ def _parse_rule(table: Mapping[str, Any], source: str, content_hash: str) -> Rul
         if isinstance(v, bool) or not isinstance(v, int) or v < 2:
             raise _fail(source, "min_n", f"min_n = {v!r} — must be a whole number >= 2")
         values["min_n"] = v
-    if "nominal" in table:
-        v = _number(table, "nominal", source, "nominal")
-        if v < 5:
-            raise _fail(source, "nominal", f"nominal = {v:g} — must be >= 5 (the TNE table starts at 5 g or mL)")
-        values["nominal"] = v
+    values.update(_quantity_keys(table, source, unit))
     for key in ("known_sd", "shift_of_interest", "idle_minutes"):
         if key in table:
             v = _number(table, key, source, key)

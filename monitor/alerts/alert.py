@@ -9,6 +9,7 @@ from typing import Any
 ALERT_KINDS = (
     "hold",              # a lot's mean is shown to have moved off target
     "review",            # a lot needs a person: too small, non-normal, no rule for the product, ...
+    "verdict-changed",   # a lot judged again (late values) got a verdict other than its notified hold/review
     "file-rejected",     # an export could not be used; it was quarantined
     "config-rejected",   # a config / rule / template edit was bad; the last good version stays in force
     "file-duplicate",    # the same content arrived again; not counted twice
@@ -20,9 +21,14 @@ ALERT_KINDS = (
 )
 
 
+VERDICT_KINDS = ("hold", "review", "verdict-changed")   # alerts whose data is a Verdict.to_json()
+
+
 @dataclass(frozen=True)
 class Alert:
-    """One alert. ``data`` is JSON-safe; for hold/review it is ``Verdict.to_json()`` plus context.
+    """One alert. ``data`` is JSON-safe; for hold/review it is ``Verdict.to_json()`` plus context; for
+    verdict-changed the new verdict's ``to_json()`` plus ``values``, ``previous`` (the replaced verdict:
+    verdict, decided_at, reason, rule, rule_version, n, mean, p_value) and ``why`` (what reopened the lot).
 
     ``dedup_key`` is stable across restarts and re-processing (e.g. ``"hold|L2|OAT-500|A1234|<rule_version>"``):
     the outbox keeps at most one alert per key and channel.
@@ -41,12 +47,12 @@ class Alert:
             raise ValueError(f"alert kind {self.kind!r} must be one of {', '.join(ALERT_KINDS)}")
 
     def to_json(self) -> dict[str, Any]:
-        """The alert-log object. For hold and review alerts the lot's numbers also stand at the top level,
-        keyed as in ``lotwarden check --format json`` (``n``, ``mean``, ``p_value``, ``verdict``, ...);
+        """The alert-log object. For hold, review and verdict-changed alerts the lot's (new) numbers also
+        stand at the top level, keyed as in ``lotwarden check --format json`` (``n``, ``mean``, ``p_value``, ``verdict``, ...);
         ``data`` keeps everything, the lot's values included."""
         obj: dict[str, Any] = {"kind": self.kind, "dedup_key": self.dedup_key, "created_at": self.created_at,
                                "line": self.line, "product": self.product, "lot": self.lot}
-        if self.kind in ("hold", "review"):
+        if self.kind in VERDICT_KINDS:
             for key, value in self.data.items():
                 if key not in obj and key not in ("values", "data"):
                     obj[key] = value

@@ -4,24 +4,23 @@ from __future__ import annotations
 
 import logging
 from email.message import EmailMessage
-from email.policy import SMTP
 from email.utils import format_datetime
 from datetime import datetime, timezone
 from typing import Any
 
 from monitor.alerts.alert import Alert
 from monitor.alerts.chart import render_chart
-from monitor.alerts.headers import clean_header_text, message_id
+from monitor.alerts.headers import NOTICE_POLICY, clean_header_text, message_id
 from monitor.alerts.templates import CAUTION, RenderedMessage, TemplateSet, message_context
 from monitor.errors import TemplateError
 
 log = logging.getLogger("monitor.alerts")
-CHART_KINDS = ("hold",)
+CHART_KINDS = ("hold", "verdict-changed")
 MAX_CHARTS = 10     # charts per message: a grouped message of 50 holds stays small and quick to build
 
 
 def chart_for(alert: Alert) -> bytes | None:
-    """The PNG chart of a held lot, or None when the alert carries no values (or drawing fails)."""
+    """The PNG chart of a held (or re-judged) lot, or None when the alert carries no values (or drawing fails)."""
     d = alert.data
     values = d.get("values")
     if alert.kind not in CHART_KINDS or not isinstance(values, list) or not values:
@@ -46,7 +45,7 @@ def render_with_fallback(kind: str, context: dict[str, Any], templates: Template
     items = context["alerts"]
     text = "\n".join(f"{it['kind']} line {it['line']} product {it['product']} lot {it['lot']}: {it['data']}"
                      for it in items) + "\n\n" + CAUTION + "\n"
-    return RenderedMessage(subject=f"[lotwarden] {len(items)} alert(s)", text=text,
+    return RenderedMessage(subject=f"[lotwarden] {len(items)} alert{'' if len(items) == 1 else 's'}", text=text,
                            html="<pre>" + text.replace("&", "&amp;").replace("<", "&lt;") + "</pre>")
 
 
@@ -54,7 +53,7 @@ def build_message(alerts: list[Alert], *, sender: str, recipients: tuple[str, ..
                   templates: TemplateSet, shipped: TemplateSet) -> EmailMessage:
     """One message for ``alerts`` (its own kind's templates for one alert, the group templates for several)."""
     charts: list[tuple[str, bytes]] = []
-    items = []
+    items: list[dict[str, Any]] = []
     mid = message_id([a.dedup_key for a in alerts], sender.rpartition("@")[2])
     token = mid.strip("<>").split("@")[0]
     for i, a in enumerate(alerts):
@@ -70,7 +69,7 @@ def build_message(alerts: list[Alert], *, sender: str, recipients: tuple[str, ..
     kind = alerts[0].kind if len(alerts) == 1 and not folded else "group"
     rendered = render_with_fallback(kind, ctx, templates, shipped)
 
-    msg = EmailMessage(policy=SMTP)
+    msg = EmailMessage(policy=NOTICE_POLICY)
     msg["Subject"] = clean_header_text(rendered.subject) or "[lotwarden] alert"
     msg["From"] = clean_header_text(sender)
     msg["To"] = ", ".join(clean_header_text(r) for r in recipients)
@@ -80,7 +79,8 @@ def build_message(alerts: list[Alert], *, sender: str, recipients: tuple[str, ..
     msg.set_content(rendered.text)
     msg.add_alternative(rendered.html, subtype="html")
     if charts:
-        html_part = msg.get_payload()[1]
+        html_part = msg.get_body(preferencelist=("html",))
+        assert isinstance(html_part, EmailMessage)
         for n, (cid, png) in enumerate(charts, start=1):
             html_part.add_related(png, "image", "png", cid=f"<{cid}>", filename=f"lot-chart-{n}.png",
                                   disposition="inline")

@@ -128,7 +128,10 @@ def run_digest(dispatcher: "Dispatcher", now: float | None = None) -> bool:
     if due is None:
         return False
     if now_dt - due > timedelta(hours=settings.catch_up_hours):
-        log.info("digest for %s skipped: more than %g h late", _utc(due), settings.catch_up_hours)
+        skipped = dispatcher.skipped_digests
+        if _utc(due) not in skipped:              # the drain asks every few seconds: say it once per digest
+            skipped.add(_utc(due))
+            log.info("digest for %s skipped: more than %g h late", _utc(due), settings.catch_up_hours)
         return False
     conn = dispatcher.conn
     due_key = _utc(due)

@@ -99,6 +99,7 @@ class Dispatcher:
         self._templates: TemplateSet | None = None
         self._email: Any = None
         self.template_error: TemplateError | None = None
+        self.skipped_digests: set[str] = set()    # due times (UTC ISO) of digests logged as too late to send
         if settings.email is not None:
             self._shipped_templates = TemplateSet.load(None)
             self._templates = self._shipped_templates

@@ -19,6 +19,15 @@ if TYPE_CHECKING:
 log = logging.getLogger("monitor.alerts")
 
 
+def previous_verdict(alert: Alert) -> str | None:
+    """The replaced verdict ("hold", "review") of a verdict-changed alert; None for other kinds."""
+    if alert.kind != "verdict-changed":
+        return None
+    prev = alert.data.get("previous")
+    verdict = prev.get("verdict") if isinstance(prev, dict) else None
+    return verdict if isinstance(verdict, str) and verdict else None
+
+
 class EmailDispatch:
     """The e-mail side of a Dispatcher."""
 
@@ -33,7 +42,8 @@ class EmailDispatch:
         self.sent_messages = 0
 
     def recipients_for(self, alert: Alert) -> tuple[str, ...]:
-        return self.email.recipients_for(alert.kind, alert.line, alert.product)
+        """The alert's recipients (a verdict-changed alert also by the kind of the verdict it replaces)."""
+        return self.email.recipients_for(alert.kind, alert.line, alert.product, previous_verdict(alert))
 
     def drain(self, now: float, *, flush: bool = False) -> int:
         conn = self.d.conn

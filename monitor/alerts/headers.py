@@ -1,4 +1,5 @@
-"""Header-safe text: data values from exports are cleaned before they reach Subject, From or To.
+"""Header-safe text: data values from exports are cleaned before they reach Subject, From or To; the
+Subject is folded so that its first line always carries text.
 
 This Python (3.11.7) still turns an RFC 2047 encoded newline into a real header line when it folds a
 header (CVE-2024-6923), so besides CR, LF, NUL and other control characters we remove every encoded-word
@@ -10,6 +11,9 @@ from __future__ import annotations
 import hashlib
 import re
 import unicodedata
+from email.header import Header
+from email.policy import EmailPolicy
+from typing import Any
 
 MAX_HEADER_TEXT = 200
 _MARKERS = re.compile(r"=\?|\?=")
@@ -40,3 +44,38 @@ def message_id(dedup_keys: list[str] | tuple[str, ...], domain: str) -> str:
     digest = hashlib.sha256("\n".join(sorted(dedup_keys)).encode("utf-8")).hexdigest()[:32]
     safe_domain = re.sub(r"[^A-Za-z0-9.-]", "", domain) or "lotwarden.invalid"
     return f"<lotwarden.{digest}@{safe_domain}>"
+
+
+def fold_text_header(name: str, text: str, *, max_line: int = 78, linesep: str = "\r\n") -> str:
+    """``name: text`` folded per RFC 5322 section 2.2.3 (whitespace before each line break, lines of at most
+    ``max_line`` characters where a word allows it), text on the first line; non-ASCII text as RFC 2047
+    encoded words. The stdlib folder moves a value that fits on one line of its own onto a continuation line,
+    leaving "Subject:" bare, and parsers then read the subject with a leading space."""
+    if not text.isascii():
+        encoded = Header(text, "utf-8", header_name=name, maxlinelen=max_line).encode(linesep=linesep)
+        return f"{name}: {encoded}{linesep}"
+    words = text.split(" ")
+    lines = [f"{name}: {words[0]}"]
+    for word in words[1:]:
+        if len(lines[-1]) + 1 + len(word) <= max_line or not lines[-1].strip():
+            lines[-1] += " " + word
+        else:
+            lines.append(" " + word)
+    return linesep.join(lines) + linesep
+
+
+class NoticePolicy(EmailPolicy):
+    """The SMTP policy, with Subject folded by ``fold_text_header`` (text on the first line)."""
+
+    def fold(self, name: str, value: Any) -> str:
+        if name.lower() == "subject":
+            return fold_text_header(name, str(value), max_line=self.max_line_length or 78, linesep=self.linesep)
+        return super().fold(name, value)
+
+    def fold_binary(self, name: str, value: Any) -> bytes:
+        if name.lower() == "subject":
+            return self.fold(name, value).encode("ascii")
+        return super().fold_binary(name, value)
+
+
+NOTICE_POLICY = NoticePolicy(linesep="\r\n")

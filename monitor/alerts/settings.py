@@ -48,14 +48,17 @@ EMAIL_KEYS: dict[str, tuple[Any, str]] = {
     "timeout": (20.0, "seconds to wait for the server on connect and each command (> 0)"),
     "retry_first_seconds": (2.0, "first retry delay after a connection error or 4xx reply (> 0)"),
     "retry_max_seconds": (60.0, "cap of the jittered exponential retry delay (> 0)"),
-    "route": ((), "[[alerts.email.route]] tables: lines / products (globs) / kinds select alerts, recipients"
-                  " receive them; an alert no route selects goes to `recipients`"),
+    "route": ((), ("[[alerts.email.route]] tables: lines / products (globs) / kinds select alerts; a route's"
+                   " recipients receive them in addition to `recipients` (or instead, with replace_default)")),
 }
 ROUTE_KEYS: dict[str, tuple[Any, str]] = {
     "lines": (("*",), "line names this route selects (glob patterns allowed)"),
     "products": (("*",), "product codes this route selects (glob patterns allowed)"),
-    "kinds": (("*",), "alert kinds this route selects"),
+    "kinds": (("*",), ("alert kinds this route selects; a verdict-changed alert is also selected by the kind"
+                       " of the verdict it replaces (hold, review)")),
     "recipients": (None, "addresses that receive the selected alerts (required)"),
+    "replace_default": (False, ("true: the selected alerts go to this route's recipients instead of the"
+                                " default `recipients`; false: in addition to them")),
 }
 COMMAND_KEYS: dict[str, tuple[Any, str]] = {
     "argv": (None, "program and arguments (list of strings, no shell); the alert JSON arrives on stdin (required)"),
@@ -83,16 +86,19 @@ class LogSettings:
 
 @dataclass(frozen=True)
 class Route:
-    """One `[[alerts.email.route]]`: which alerts go to which extra recipients."""
+    """One `[[alerts.email.route]]`: which alerts go to which extra (or, with replace_default, other) recipients."""
 
     recipients: tuple[str, ...]
     lines: tuple[str, ...] = ("*",)
     products: tuple[str, ...] = ("*",)
     kinds: tuple[str, ...] = ("*",)
+    replace_default: bool = False
 
-    def selects(self, kind: str, line: str, product: str) -> bool:
-        """True when the alert's kind, line and product all match this route."""
-        return (any(fnmatch.fnmatchcase(kind, k) for k in self.kinds)
+    def selects(self, kind: str, line: str, product: str, previous: str | None = None) -> bool:
+        """True when the alert's kind (or, for verdict-changed, the replaced verdict ``previous``), line and
+        product all match this route."""
+        kinds = (kind,) if previous is None else (kind, previous)
+        return (any(fnmatch.fnmatchcase(k, pat) for k in kinds for pat in self.kinds)
                 and any(fnmatch.fnmatchcase(line, p) for p in self.lines)
                 and any(fnmatch.fnmatchcase(product, p) for p in self.products))
 
@@ -115,13 +121,19 @@ class EmailSettings:
     retry_max_seconds: float = 60.0
     routes: tuple[Route, ...] = ()
 
-    def recipients_for(self, kind: str, line: str, product: str) -> tuple[str, ...]:
-        """Recipients of one alert: every matching route's, or the default list when none matches."""
-        found: list[str] = []
+    def recipients_for(self, kind: str, line: str, product: str, previous: str | None = None) -> tuple[str, ...]:
+        """Recipients of one alert: the default list plus every matching route's; a matching route with
+        ``replace_default`` drops the default list. ``previous`` is the replaced verdict of a verdict-changed
+        alert (routes for that verdict's kind select it too)."""
+        found: set[str] = set()
+        keep_default = True
         for route in self.routes:
-            if route.selects(kind, line, product):
-                found.extend(r for r in route.recipients if r not in found)
-        return tuple(sorted(found)) if found else tuple(sorted(set(self.recipients)))
+            if route.selects(kind, line, product, previous):
+                found.update(route.recipients)
+                keep_default = keep_default and not route.replace_default
+        if keep_default:
+            found.update(self.recipients)
+        return tuple(sorted(found))
 
     def read_password(self) -> str | None:
         """The login password from the environment or the password file (raises ConfigError if missing)."""
@@ -201,7 +213,9 @@ def parse_alerts(table: Mapping[str, Any], *, source: str, base_dir: Path) -> Al
     if "log" in table:
         t = table["log"]
         p.unknown(t, LOG_KEYS, "alerts.log")
-        log = LogSettings(path=p.path(t, "path", "alerts.log", required=True),
+        log_path = p.path(t, "path", "alerts.log", required=True)
+        assert log_path is not None                     # required=True raises instead of returning None
+        log = LogSettings(path=log_path,
                           retry_max_seconds=p.positive(t, "retry_max_seconds", "alerts.log", LOG_KEYS))
     if "email" in table:
         email = p.email(table["email"])
@@ -363,7 +377,12 @@ class _Parser:
         for k in sel["kinds"]:
             if k != "*" and k not in ALERT_KINDS:
                 raise self.fail(f"{pre}.kinds", f"unknown alert kind {k!r}", hint="allowed: " + ", ".join(ALERT_KINDS))
-        return Route(recipients=self.addresses(t["recipients"], f"{pre}.recipients"), **sel)
+        replace = t.get("replace_default", ROUTE_KEYS["replace_default"][0])
+        if not isinstance(replace, bool):
+            raise self.fail(f"{pre}.replace_default", f"replace_default = {replace!r} — must be true or false",
+                            hint=ROUTE_KEYS["replace_default"][1])
+        return Route(recipients=self.addresses(t["recipients"], f"{pre}.recipients"), replace_default=replace,
+                     **sel)
 
     def digest(self, t: Mapping[str, Any]) -> DigestSettings:
         from zoneinfo import ZoneInfo, ZoneInfoNotFoundError

@@ -10,7 +10,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any, Mapping, Sequence
 
 import jinja2
 from jinja2.sandbox import SandboxedEnvironment
@@ -30,25 +30,72 @@ def required_names() -> list[str]:
     return [f"{kind}.{part}" for kind in MESSAGE_KINDS for part in PARTS]
 
 
+def _finite(value: Any) -> bool:
+    return not isinstance(value, bool) and isinstance(value, (int, float)) and math.isfinite(value)
+
+
 def fmt_number(value: Any, digits: int = 2) -> str:
     """A number with ``digits`` decimals, or "—" when missing / not finite."""
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+    if not _finite(value):
         return "—"
     return f"{value:.{digits}f}"
 
 
-def fmt_p(value: Any) -> str:
-    """A p-value: 4 decimals, or "< 0.0001"."""
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+def fmt_general(value: Any) -> str:
+    """A number in its shortest plain form (alpha 0.05, df 30), or "—" when missing / not finite."""
+    if not _finite(value):
         return "—"
-    return "< 0.0001" if value < 1e-4 else f"{value:.4f}"
+    return f"{float(value):g}" if float(value) != int(value) or abs(value) >= 1e15 else str(int(value))
+
+
+def fmt_p(value: Any, alpha: Any = None) -> str:
+    """A p-value: 4 decimals, or "< 0.0001"; with ``alpha``, as many more digits as it takes for the
+    printed value to lie on the same side of alpha as the exact one (so a hold at alpha 0.01 never shows
+    0.0100)."""
+    if not _finite(value):
+        return "—"
+    p = float(value)
+    a = float(alpha) if _finite(alpha) else None
+
+    def side(x: float) -> int:
+        return 0 if a is None else (x > a) - (x < a)
+
+    if p < 1e-4 and (a is None or a >= 1e-4):
+        return "< 0.0001"
+    if p < 1e-4:
+        for sig in range(2, 18):
+            text = f"{p:.{sig}g}"
+            if side(float(text)) == side(p):
+                return text
+        return repr(p)
+    for digits in range(4, 18):
+        text = f"{p:.{digits}f}"
+        if side(float(text)) == side(p):
+            return text
+    return repr(p)
+
+
+def fmt_p_equals(value: Any, alpha: Any = None) -> str:
+    """"p = 0.0123" or "p < 0.0001" (never "p = < 0.0001"); "p not computed" when missing."""
+    text = fmt_p(value, alpha)
+    if text == "—":
+        return "p not computed"
+    return "p " + text if text.startswith("<") else "p = " + text
 
 
 def fmt_signed(value: Any, digits: int = 2) -> str:
     """A signed offset, e.g. "+1.25" or "-0.40"."""
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+    if not _finite(value):
         return "—"
     return f"{value:+.{digits}f}"
+
+
+def fmt_count(value: Any, singular: str, plural: str | None = None) -> str:
+    """``value`` with the noun in the right number: "1 pack", "3 packs", "0 rows"."""
+    n = value if isinstance(value, int) and not isinstance(value, bool) else None
+    if n is None:
+        return f"{value} {plural or singular + 's'}"
+    return f"{n} {singular if n == 1 else (plural or singular + 's')}"
 
 
 SAMPLE_DIGEST = {"period_start": "2026-11-30T05:00:00+00:00", "period_end": "2026-12-01T05:00:00+00:00",
@@ -63,22 +110,39 @@ SAMPLE_DIGEST = {"period_start": "2026-11-30T05:00:00+00:00", "period_end": "202
 def sample_context(kind: str = "hold") -> dict[str, Any]:
     """A context with every field the shipped templates use (for the load-time test render)."""
     if kind == "digest":
-        item = {"kind": "digest", "dedup_key": "digest|x", "created_at": "2026-12-01T05:00:00+00:00", "line": "",
-                "product": "", "lot": "", "data": dict(SAMPLE_DIGEST), "chart_cid": None}
-        return message_context([item], folded=False, generated_at="2026-12-01T05:00:00+00:00")
-    data = {"file": "exports/L2-A1001.csv", "files": ["exports/L2-A1001.csv"], "line": "L2", "product": "OAT-500",
-            "lot": "A1001", "rule": "oat-500", "rule_version": "0000", "n": 10, "mean": 497.4, "sd": 0.6,
-            "target": 500.0, "unit": "g", "alternative": "two-sided", "alpha": 0.05, "test": "t",
-            "statistic": -12.7, "df": 9.0, "p_value": 1e-6, "ci_low": 497.0, "ci_high": 497.9,
-            "normality": {"test": "shapiro", "statistic": 0.97, "p_value": 0.8, "passed": True, "note": ""},
-            "power": 0.9, "n_for_power": 8, "verdict": "hold", "reason": "mean below target", "heads": [],
-            "values": [497.0, 498.0], "path": "exports/x.csv", "error": "example", "channel": "email"}
-    item = {"kind": "hold", "dedup_key": "hold|L2|OAT-500|A1001|0000", "created_at": "2026-12-01T06:00:00+00:00",
+        digest = {"kind": "digest", "dedup_key": "digest|x", "created_at": "2026-12-01T05:00:00+00:00", "line": "",
+                  "product": "", "lot": "", "data": dict(SAMPLE_DIGEST), "chart_cid": None}
+        return message_context([digest], folded=False, generated_at="2026-12-01T05:00:00+00:00")
+    data: dict[str, Any] = {
+        "file": "archive/2026-12-01/L2-A1001.csv", "files": ["archive/2026-12-01/L2-A1001.csv"], "line": "L2",
+        "product": "OAT-500", "lot": "A1001", "rule": "oat-500", "rule_version": "0000", "n": 10, "mean": 497.4,
+        "sd": 0.6, "target": 500.0, "unit": "g", "unit_assumed": True, "alternative": "two-sided", "alpha": 0.05,
+        "test": "wilcoxon", "statistic": -12.7, "df": 9.0, "p_value": 1e-6, "ci_low": 497.0, "ci_high": 497.9,
+        "normality": {"test": "shapiro", "statistic": 0.97, "p_value": 0.8, "passed": True, "note": ""},
+        "power": 0.9, "n_for_power": 8, "verdict": "hold", "reason": "mean below target", "excluded": 1,
+        "excluded_by": {"blank": 1, "not_a_number": 0, "not_finite": 0, "dropped_value": 0},
+        "wilcoxon": {"method": "exact", "zeros": 1, "n_used": 9},
+        "average_quantity": {"passed": False, "reason": "average-quantity screen fails: 1 pack short"},
+        "heads": [{"head": "H1", "n": 10, "mean": 497.4, "sd": 0.6, "offset": -2.6, "p_value": 1e-5}],
+        "values": [497.0, 498.0], "path": "exports/x.csv", "error": "example", "channel": "email"}
+    if kind == "verdict-changed":
+        data.update(verdict="pass", reason="no shift of the mean shown", why="12 late values reopened the lot",
+                    previous={"verdict": "hold", "decided_at": "2026-12-01T05:00:00+00:00",
+                              "reason": "mean below target", "rule": "oat-500", "rule_version": "0000", "n": 8,
+                              "mean": 497.1, "p_value": 1e-5})
+    item: dict[str, Any] = {"kind": "verdict-changed" if kind == "verdict-changed" else "hold",
+            "dedup_key": "hold|L2|OAT-500|A1001|0000", "created_at": "2026-12-01T06:00:00+00:00",
             "line": "L2", "product": "OAT-500", "lot": "A1001", "data": data, "chart_cid": "chart0"}
-    return message_context([item], folded=False, generated_at="2026-12-01T06:00:00+00:00")
+    items: list[dict[str, Any]] = [item]
+    if kind == "group":           # a group shows every partial: a verdict, a changed verdict, a generic alert
+        changed = sample_context("verdict-changed")["alert"]
+        items = [item, changed, {"kind": "file-rejected", "dedup_key": "file-rejected|1",
+                                 "created_at": "2026-12-01T06:00:00+00:00", "line": "", "product": "", "lot": "",
+                                 "data": {"path": "exports/x.csv", "line": None, "key": None}, "chart_cid": None}]
+    return message_context(items, folded=False, generated_at="2026-12-01T06:00:00+00:00")
 
 
-def message_context(items: list[Mapping[str, Any]], *, folded: bool, generated_at: str) -> dict[str, Any]:
+def message_context(items: Sequence[Mapping[str, Any]], *, folded: bool, generated_at: str) -> dict[str, Any]:
     """The context every template gets: ``alerts`` (list), ``alert`` and ``data`` (the first), counts."""
     first = items[0]
     kinds: dict[str, int] = {}
@@ -107,7 +171,8 @@ class TemplateSet:
             loader=jinja2.DictLoader(sources), undefined=jinja2.StrictUndefined,
             autoescape=jinja2.select_autoescape(enabled_extensions=("html",), default_for_string=False),
             trim_blocks=True, lstrip_blocks=True, keep_trailing_newline=True, auto_reload=False)
-        self._env.filters.update(num=fmt_number, pvalue=fmt_p, signed=fmt_signed)
+        self._env.filters.update(num=fmt_number, pvalue=fmt_p, p_equals=fmt_p_equals, signed=fmt_signed,
+                                 general=fmt_general, count=fmt_count)
         self._compiled: dict[str, jinja2.Template] = {}
         for name in sorted(sources):
             self._compiled[name] = self._compile(name)

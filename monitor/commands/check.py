@@ -1,20 +1,23 @@
 """`lotwarden check`: judge every lot in one or more export files and print a table or JSON.
 
 Exit 0 when every lot passes, 1 when any lot is `hold` or `review`, 2 for usage, rule or unreadable-file
-errors (each named on stderr; the lots of the readable files are still printed).
+errors (each named on stderr; the lots of the readable files are still printed). When stderr is a terminal,
+a status line there counts files read and lots judged (never when stderr is a file or pipe).
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import math
 import sys
+import time
 from pathlib import Path
-from typing import Any
+from typing import Any, TextIO
 
 from monitor.engine import SCREENING_NOTE
 from monitor.errors import ConfigError, ExportError, LotwardenError
-from monitor.lot import Verdict
+from monitor.lot import Verdict, excluded_counts
 from monitor.rulebook import ALTERNATIVES, NormalityRule, Rule, load_rules, match_rule
 from monitor.tomlfile import read_toml
 
@@ -36,7 +39,7 @@ def register(sub: argparse._SubParsersAction) -> argparse.ArgumentParser:
     p.add_argument("--config", metavar="FILE",
                    help=f"daemon config whose [profiles.*] tell how to read exports (default: {DEFAULT_CONFIG} if present)")
     p.add_argument("--target", type=float, help="target mean (ad-hoc rule)")
-    p.add_argument("--unit", help="unit of --target (ad-hoc; default: the values' unit, else g)")
+    p.add_argument("--unit", help="unit of --target (ad-hoc; default: the unit the values carry, if any)")
     p.add_argument("--alternative", choices=ALTERNATIVES,
                    help="two-sided: off target either way; less: low fill; greater: giveaway (default two-sided)")
     p.add_argument("--alpha", type=float, help="significance level in (0, 0.5] (default 0.05)")
@@ -116,75 +119,223 @@ def _rules(args: argparse.Namespace, config: dict[str, Any] | None, config_path:
     return rules
 
 
-def judge(paths: list[str], rules: list[Rule], profiles: list) -> tuple[list[Verdict], list[str]]:
+class Progress:
+    """One self-rewriting status line on stderr (files read, lots judged) while ``check`` runs.
+
+    Shown only when the stream is a terminal; redrawn at most every ``every`` seconds and erased at the
+    end, so piped or redirected stderr never gets it.
+    """
+
+    def __init__(self, stream: TextIO, every: float = 0.1) -> None:
+        self.stream = stream
+        self.on = _isatty(stream)
+        self.every = every
+        self.last = -math.inf
+        self.shown = False
+        self.files = (0, 0)
+        self.lots = (0, 0)
+
+    def update(self, *, files: tuple[int, int] | None = None, lots: tuple[int, int] | None = None,
+               force: bool = False) -> None:
+        self.files = files or self.files
+        self.lots = lots or self.lots
+        if not self.on:
+            return
+        now = time.monotonic()
+        if not force and now - self.last < self.every:
+            return
+        self.last = now
+        text = f"lotwarden: {self.files[0]}/{self.files[1]} files read"
+        if self.lots[1]:
+            text += f", {self.lots[0]}/{self.lots[1]} lots judged"
+        self.stream.write("\r" + text + "\x1b[K")
+        self.stream.flush()
+        self.shown = True
+
+    def clear(self) -> None:
+        """Erase the status line (before other stderr output, and at the end)."""
+        if self.shown:
+            self.stream.write("\r\x1b[K")
+            self.stream.flush()
+            self.shown = False
+            self.last = -math.inf
+
+    def say(self, message: str) -> None:
+        """A line on stderr that the status line does not overwrite."""
+        self.clear()
+        print(message, file=self.stream)
+
+
+def _isatty(stream: TextIO) -> bool:
+    try:
+        return stream.isatty()
+    except (AttributeError, ValueError):   # a replaced or closed stream
+        return False
+
+
+CHUNK = 2000  # lots per engine call: a lot's verdict does not depend on its batch (monitor.engine)
+
+
+def judge(paths: list[str], rules: list[Rule], profiles: list,
+          progress: Progress | None = None) -> tuple[list[Verdict], list[str]]:
     """Read, assemble and judge; returns the verdicts and one error message per unreadable file."""
     from monitor.assemble import assemble_lots
     from monitor.engine import evaluate_many
     from monitor.ingest import profile_for, read_export
     from monitor.lot import unjudged
 
+    show = progress or Progress(sys.stderr)
     exports, errors = [], []
-    for path in paths:
+    show.update(files=(0, len(paths)), force=True)
+    for done, path in enumerate(paths, 1):
         try:
             exports.append(read_export(path, profile_for(path, profiles)))
             for note in exports[-1].notes:
-                print(f"lotwarden: note: {path}: {note}", file=sys.stderr)
+                show.say(f"lotwarden: note: {path}: {note}")
             if exports[-1].bad_rows:
                 first = exports[-1].bad_rows[0]
-                print(f"lotwarden: note: {path}: {len(exports[-1].bad_rows)} bad row(s) left out, first on line "
-                      f"{first.line}: {first.reason}", file=sys.stderr)
+                fate = ("rows of a lot without a usable value count in its excluded" if exports[-1].kind == "values"
+                        else "an unusable lot summary is listed as a review lot")
+                show.say(f"lotwarden: note: {path}: {len(exports[-1].bad_rows)} bad row(s), first on line "
+                         f"{first.line}: {first.reason} ({fate})")
         except ExportError as exc:
             errors.append(str(exc))
         except OSError as exc:
             errors.append(f"{path}: cannot read: {exc.strerror or exc}")
+        show.update(files=(done, len(paths)))
     single = rules[0] if len(rules) == 1 and rules[0].name == "ad-hoc" else None
     assembled = assemble_lots(exports, (lambda p: single) if single else (lambda p: match_rule(rules, p)))
     verdicts: list[Verdict | None] = [None] * len(assembled)
     by_rule: dict[int, list[int]] = {}
+    judged = 0
     for i, a in enumerate(assembled):
         if a.problem is not None or a.rule is None:
             r = a.rule
             verdicts[i] = unjudged(a.data, a.problem or "no rule", rule_name=r.name if r else "",
                                    rule_version=r.version if r else "", target=r.target if r else float("nan"),
                                    alternative=r.alternative if r else "", alpha=r.alpha if r else float("nan"))
+            judged += 1
         else:
             by_rule.setdefault(id(a.rule), []).append(i)
+    show.update(lots=(judged, len(assembled)), force=True)
     for idxs in by_rule.values():
         rule = assembled[idxs[0]].rule
         assert rule is not None
-        for i, v in zip(idxs, evaluate_many([assembled[i].data for i in idxs], rule)):
-            verdicts[i] = v
+        for c in range(0, len(idxs), CHUNK):
+            part = idxs[c:c + CHUNK]
+            for i, v in zip(part, evaluate_many([assembled[i].data for i in part], rule)):
+                verdicts[i] = v
+            judged += len(part)
+            show.update(lots=(judged, len(assembled)))
+    show.update(force=True)
+    show.clear()
     return [v for v in verdicts if v is not None], errors
 
 
-def _fmt(x: float | None, digits: int = 4) -> str:
-    if x is None:
+def render_json(verdicts: list[Verdict]) -> str:
+    """The JSON array of ``Verdict.to_json()`` objects, one lot per line (json's C encoder: fast)."""
+    if not verdicts:
+        return "[]\n"
+    enc = json.JSONEncoder(allow_nan=False)
+    return "[\n" + ",\n".join(enc.encode(v.to_json()) for v in verdicts) + "\n]\n"
+
+
+def _finite(x: float | None) -> bool:
+    return x is not None and math.isfinite(x)
+
+
+def _fmt(x: float | None, digits: int = 3) -> str:
+    """A number with ``digits`` decimals, trailing zeros after the point dropped; "-" when there is none."""
+    if x is None or not math.isfinite(x):
         return "-"
-    return f"{x:.{digits}g}" if abs(x) < 1e-3 and x != 0 else f"{x:.{digits}f}".rstrip("0").rstrip(".") \
-        if abs(x) < 1e6 else f"{x:.4g}"
+    if x != 0 and abs(x) < 10.0 ** -digits:
+        return f"{x:.{digits}g}"
+    if abs(x) >= 1e7:
+        return f"{x:.7g}"
+    text = f"{x:.{digits}f}"
+    if "." in text:
+        text = text.rstrip("0").rstrip(".")
+    return "0" if text in ("-0", "") else text
+
+
+def _df_text(df: float | None) -> str:
+    """Degrees of freedom as JSON prints the number (30 for 30.0, 29.5 for 29.5)."""
+    if not _finite(df):
+        return "-"
+    assert df is not None
+    return str(int(df)) if float(df).is_integer() else repr(float(df))
+
+
+def p_vs_alpha(p: float | None, alpha: float) -> str:
+    """``0.0099 < 0.01`` / ``0.41 ≥ 0.05``: p with as many digits as it takes to show on which side of
+    alpha it lies (the comparison that decided the verdict); "-" when no test ran."""
+    if not _finite(p):
+        return "-"
+    assert p is not None
+    if not math.isfinite(alpha):
+        return f"{p:.2g}"
+    text = repr(p)
+    for digits in (2, 3, 4, 6, 10, 17):
+        candidate = f"{p:.{digits}g}"
+        shown = float(candidate)
+        if (shown < alpha) == (p < alpha) and (shown != alpha or p == alpha):
+            text = candidate
+            break
+    return f"{text} {'<' if p < alpha else '≥'} {alpha:.10g}"
+
+
+_EXCLUDED_WORDS = {"blank": "blank", "not_a_number": "not a number", "not_finite": "not finite",
+                   "dropped_value": "in drop_values"}
+
+
+def _notes(v: Verdict) -> str:
+    """What the row must say beside its numbers: an assumed unit, rows without a usable value."""
+    out = []
+    if v.unit_assumed:
+        out.append(f"unit assumed ({v.unit})" if v.unit else "unit assumed")
+    if v.excluded:
+        counts = excluded_counts(v.excluded_by, v.excluded)
+        why = ", ".join(f"{k} {_EXCLUDED_WORDS.get(r, r)}" for r, k in counts.items() if k)
+        out.append(f"{v.excluded} excluded ({why})")
+    return "; ".join(out) or "-"
+
+
+def _file_cell(v: Verdict) -> str:
+    if not v.files:
+        return "-"
+    more = len(v.files) - 1
+    return Path(v.files[0]).name + (f" +{more} more" if more else "")
 
 
 def render_table(verdicts: list[Verdict]) -> str:
-    head = ["file", "lot", "product", "n", "mean", "sd", "target", "test", "stat", "df", "p", "CI", "verdict"]
+    head = ["file", "lot", "product", "n", "mean", "sd", "target", "test", "stat", "df", "p vs alpha", "CI",
+            "verdict", "notes"]
     rows = []
     for v in verdicts:
-        ci = f"[{_fmt(v.ci_low, 3) if v.ci_low is not None else '-inf'}, " \
-             f"{_fmt(v.ci_high, 3) if v.ci_high is not None else '+inf'}]" if v.test else "-"
-        p = "-" if v.p_value is None else (f"{v.p_value:.2e}" if v.p_value < 1e-3 else f"{v.p_value:.4f}")
-        rows.append([Path(v.files[0]).name if v.files else "-", v.key.lot, v.key.product, str(v.n),
-                     _fmt(v.mean, 3), _fmt(v.sd, 3), _fmt(v.target, 3) + (f" {v.unit}" if v.unit else ""),
-                     v.test or "-", _fmt(v.statistic, 3), _fmt(v.df, 0), p, ci, v.verdict.upper()])
+        ci = "-"
+        if v.test and (_finite(v.ci_low) or _finite(v.ci_high)):
+            ci = f"[{_fmt(v.ci_low) if _finite(v.ci_low) else '-inf'}, " \
+                 f"{_fmt(v.ci_high) if _finite(v.ci_high) else '+inf'}]"
+        target = _fmt(v.target) + (f" {v.unit}" if v.unit and _finite(v.target) else "")
+        rows.append([_file_cell(v), v.key.lot or "-", v.key.product or "-", str(v.n), _fmt(v.mean), _fmt(v.sd),
+                     target, v.test or "-", _fmt(v.statistic), _df_text(v.df), p_vs_alpha(v.p_value, v.alpha),
+                     ci, v.verdict.upper(), _notes(v)])
     widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h) for i, h in enumerate(head)]
-    out = ["  ".join(h.ljust(w) for h, w in zip(head, widths)),
+    out = ["  ".join(h.ljust(w) for h, w in zip(head, widths)).rstrip(),
            "  ".join("-" * w for w in widths)]
     for r, v in zip(rows, verdicts):
-        out.append("  ".join(c.ljust(w) for c, w in zip(r, widths)))
+        out.append("  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip())
         out.append("      " + v.reason)
     counts = {k: sum(1 for v in verdicts if v.verdict == k) for k in ("pass", "hold", "review")}
     out.append("")
-    out.append(f"{len(verdicts)} lots: {counts['pass']} pass, {counts['hold']} hold, {counts['review']} review.")
+    out.append(f"{plural(len(verdicts), 'lot')}: {counts['pass']} pass, {counts['hold']} hold, "
+               f"{counts['review']} review.")
     out.append(CAUTION)
     return "\n".join(out)
+
+
+def plural(count: int, word: str) -> str:
+    return f"{count} {word if count == 1 else word + 's'}"
 
 
 def run(args: argparse.Namespace) -> int:
@@ -197,11 +348,11 @@ def run(args: argparse.Namespace) -> int:
         else:
             paths.append(p)
     missing = [p for p in paths if not Path(p).is_file()]
-    verdicts, errors = judge([p for p in paths if p not in missing], rules, profiles)
+    progress = Progress(sys.stderr)
+    verdicts, errors = judge([p for p in paths if p not in missing], rules, profiles, progress)
     errors = [f"{p}: no such file" for p in missing] + errors
     if args.format == "json":
-        json.dump([v.to_json() for v in verdicts], sys.stdout, indent=2, allow_nan=False)
-        sys.stdout.write("\n")
+        sys.stdout.write(render_json(verdicts))
     else:
         print(render_table(verdicts))
     for e in errors:

@@ -44,7 +44,12 @@ def run(args: argparse.Namespace) -> int:
     from monitor.stats.power import plan_sample_size, power_curve
 
     _check(args)
-    n = plan_sample_size(args.sd, args.shift, args.alpha, args.power, args.alternative, known_sd=args.known_sd)
+    try:
+        n = plan_sample_size(args.sd, args.shift, args.alpha, args.power, args.alternative,
+                             known_sd=args.known_sd)
+    except ValueError as exc:   # the search found no lot size (more than MAX_PLAN_N units would be needed)
+        raise ConfigError(f"no lot size reaches power {args.power:g}: {exc}", key="plan",
+                          hint="detect a larger --shift, or accept a lower --power or a larger --alpha") from None
     around = sorted({max(2, k) for k in (n - 10, n - 5, n - 2, n - 1, n, n + 1, n + 2, n + 5, n + 10,
                                           2 * n, max(2, n // 2))})
     curve = power_curve(args.sd, args.shift, args.alpha, args.alternative, around, known_sd=args.known_sd)

@@ -20,8 +20,8 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from monitor.daemon import judge, lots
-from monitor.daemon.store import Store, utc_iso
+from monitor.daemon import judge, lots, rejudge
+from monitor.daemon.store import Store, inserted_id, utc_iso
 from monitor.lot import LotKey, Verdict
 from monitor.rulebook import Rule, match_rule
 
@@ -54,7 +54,8 @@ def lot_name(key: LotKey) -> str:
 def add_values(conn: sqlite3.Connection, how: Judging, file_id: int, export: Any, density: float | None,
                now: datetime, tally: Tally, after_first_insert: Callable[[], None] = lambda: None, *,
                path: str = "") -> int:
-    """Append an export's rows to their lots and close / judge lots as the rows and markers say.
+    """Append an export's rows to their lots and close / judge lots as the rows and markers say; return
+    the number of usable values (rows of a lot without one are stored too, in their place).
 
     Works from the frame's arrays: rows are grouped by (line, product, lot) codes (``lot_codes``) and
     inserted segment by segment in windows of ``CHUNK_ROWS`` rows, so no per-row Python object lives for
@@ -89,12 +90,12 @@ def add_values(conn: sqlite3.Connection, how: Judging, file_id: int, export: Any
                 after_first_insert()
         else:
             close_lot(conn, how, step.key, step.reason, at, file_id, tally)
-    return n
+    return n - cols.n_excluded   # usable values; the rows without one are stored too, counted per lot
 
 
 CHUNK_ROWS = 50_000
 INSERT_VALUE = ("INSERT INTO lot_values(lot_id, line, product, lot, seq, value, unit, density, head, timestamp,"
-                " file_id, source_line) VALUES (?,?,?,?,?,?,?,?,?,?,?,?)")
+                " file_id, source_line, excluded) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)")
 
 
 class RowColumns:
@@ -112,6 +113,16 @@ class RowColumns:
                        else np.full(n, np.nan))
         self.unit = arrow_text(rows, "unit", n, DEFAULT_UNIT)
         self.head = arrow_text(rows, "head", n, "")
+        # the reader's reason for a row of a lot without a usable value ("" = usable; no column = none)
+        self.excluded = arrow_text(rows, "excluded", n, "")
+        self.n_excluded = 0
+        if "excluded" in rows.columns and n:
+            flags = pc.not_equal(self.excluded, "")
+            flags = flags.combine_chunks() if isinstance(flags, pa.ChunkedArray) else flags
+            mask = np.asarray(flags.to_numpy(zero_copy_only=False), dtype=bool)
+            self.n_excluded = int(mask.sum())
+            if self.n_excluded:  # an excluded row has no value, whatever the frame holds there
+                self.values = np.where(mask, np.nan, self.values)
         self.stamp: pa.Array | pa.ChunkedArray | pd.Series | None = None
         if "timestamp" in rows.columns:
             ser = rows["timestamp"]
@@ -120,7 +131,8 @@ class RowColumns:
         self.lists: tuple[list[Any], ...] = ()
 
     def window_of(self, row: int) -> tuple[int, int, tuple[list[Any], ...]]:
-        """(first row, end row, lists of value, unit, head, timestamp, source line) of ``row``'s window."""
+        """(first row, end row, lists of value, unit, head, timestamp, source line, exclusion reason) of
+        ``row``'s window."""
         w = row // CHUNK_ROWS
         a, b = w * CHUNK_ROWS, min((w + 1) * CHUNK_ROWS, self.n)
         if w != self.window:
@@ -132,7 +144,8 @@ class RowColumns:
             else:
                 stamps = self.stamp.slice(a, b - a).to_pylist()
             self.lists = (finite_list(self.values[a:b]), self.unit.slice(a, b - a).to_pylist(),
-                          self.head.slice(a, b - a).to_pylist(), stamps, self.source_lines[a:b].tolist())
+                          self.head.slice(a, b - a).to_pylist(), stamps, self.source_lines[a:b].tolist(),
+                          self.excluded.slice(a, b - a).to_pylist())
             self.window = w
         return a, b, self.lists
 
@@ -173,15 +186,17 @@ def insert_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, seq0: int,
     ``recent`` (if given) keeps them for judging the lot without reading it back."""
     a = start
     while a < stop:
-        w0, w1, (values, units, heads, stamps, src) = cols.window_of(a)
+        w0, w1, (values, units, heads, stamps, src, excluded) = cols.window_of(a)
         b = min(stop, w1)
         i, j = a - w0, b - w0
         seq = seq0 + (a - start)
         conn.executemany(INSERT_VALUE, zip(
             repeat(lot_id), repeat(key.line), repeat(key.product), repeat(key.lot), range(seq, seq + (b - a)),
-            values[i:j], units[i:j], repeat(density), heads[i:j], stamps[i:j], repeat(file_id), src[i:j]))
+            values[i:j], units[i:j], repeat(density), heads[i:j], stamps[i:j], repeat(file_id), src[i:j],
+            excluded[i:j]))
         if recent is not None:
-            recent.add(lot_id, seq, cols.values[a:b], heads[i:j], units[i:j], density, file_id, path)
+            recent.add(lot_id, seq, cols.values[a:b], heads[i:j], units[i:j], density, file_id, path,
+                       excluded[i:j])
         a = b
 
 
@@ -231,7 +246,7 @@ def open_lot(conn: sqlite3.Connection, key: LotKey, at: str, ts: float, count: i
     if row is None:
         cur = conn.execute("INSERT INTO lots(line, product, lot, state, opened_at, last_value_at, last_value_ts, n)"
                            " VALUES (?,?,?,'open',?,?,?,?)", (key.line, key.product, key.lot, at, at, ts, count))
-        return int(cur.lastrowid), 1  # the file-taken audit record names the lots it opened
+        return inserted_id(cur), 1  # the file-taken audit record names the lots it opened
     lot_id, state, n = row
     if state == "closed":
         conn.execute("UPDATE lots SET state='open', closed_at=NULL, close_reason=NULL, late_values=late_values+?"
@@ -260,40 +275,43 @@ def close_lot(conn: sqlite3.Connection, how: Judging, key: LotKey, reason: str, 
     data, problem = (recent.lot_data(key, rule) if recent is not None
                      else judge.load_lot_values(conn, lot_id, key, rule))
     verdict = judge.judge(data, rule, problem, how.evaluate)
-    alert = judge.record_verdict(conn, verdict, rule, data, at=at, channels=how.channels, lot_id=lot_id,
-                                 close_reason=reason, file_id=file_id)
+    previous = rejudge.previous_verdict(conn, lot_id, key)   # judged before: late values reopened the lot
+    why = rejudge.why_reopened(conn, lot_id, previous.lot_rows) if previous is not None else ""
+    alerts = judge.record_verdict(conn, verdict, rule, data, at=at, channels=how.channels, lot_id=lot_id,
+                                  close_reason=reason, file_id=file_id, lot_rows=n, previous=previous, why=why)
     tally.verdicts.append(verdict)
     tally.closed.append(lot_name(key))
-    if alert is not None:
-        tally.alerts.append(alert.dedup_key)
+    tally.alerts.extend(a.dedup_key for a in alerts)
     return verdict
 
 
 def add_summaries(conn: sqlite3.Connection, how: Judging, file_id: int, path: str, export: Any,
                   density: float | None, at: str, tally: Tally) -> int:
-    """Each summary row is a lot of its own, judged at once from n / mean / sd."""
+    """Each summary row is a lot of its own, judged at once from n / mean / sd; a record the reader found
+    unusable (its ``problem`` column says why; no column = none) is a `review` naming the problem."""
     s: pd.DataFrame = export.summaries
     n = len(s)
     line_c, prod_c, lot_c = texts(s, "line", n), texts(s, "product", n), texts(s, "lot", n)
-    unit_c, time_c = texts(s, "unit", n, default="g"), times(s, n)
+    unit_c, time_c = texts(s, "unit", n, default=DEFAULT_UNIT), times(s, n)
+    problem_c = texts(s, "problem", n)
     src = s["source_line"].to_numpy(dtype=np.int64).tolist() if "source_line" in s else list(range(1, n + 1))
-    ns = s["n"].to_numpy(dtype=np.int64).tolist()
+    ns = np.nan_to_num(s["n"].to_numpy(dtype=np.float64), nan=0.0).astype(np.int64).tolist()  # unusable n: 0
     means = s["mean"].to_numpy(dtype=np.float64).tolist()
     sds = s["sd"].to_numpy(dtype=np.float64).tolist()
     for i in range(n):
         key = LotKey(line_c[i], prod_c[i], lot_c[i])
         cur = conn.execute("INSERT INTO lot_summaries(file_id, source_line, line, product, lot, n, mean, sd, unit,"
-                           " density, timestamp) VALUES (?,?,?,?,?,?,?,?,?,?,?)",
+                           " density, timestamp, problem) VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
                            (file_id, src[i], key.line, key.product, key.lot, ns[i], means[i], sds[i], unit_c[i],
-                            density, time_c[i]))
+                            density, time_c[i], problem_c[i]))
         rule = match_rule(list(how.rules), key.product)
         data, problem = judge.summary_lot(key, ns[i], means[i], sds[i], unit_c[i], density, rule, path)
-        verdict = judge.judge(data, rule, problem, how.evaluate)
-        alert = judge.record_verdict(conn, verdict, rule, data, at=at, channels=how.channels,
-                                     summary_id=int(cur.lastrowid), close_reason="summary", file_id=file_id)
+        verdict = (judge.with_lot_facts(judge.unusable_summary(data, rule, problem_c[i]), data) if problem_c[i]
+                   else judge.judge(data, rule, problem, how.evaluate))
+        alerts = judge.record_verdict(conn, verdict, rule, data, at=at, channels=how.channels,
+                                      summary_id=inserted_id(cur), close_reason="summary", file_id=file_id)
         tally.verdicts.append(verdict)
-        if alert is not None:
-            tally.alerts.append(alert.dedup_key)
+        tally.alerts.extend(a.dedup_key for a in alerts)
     return n
 
 
@@ -309,7 +327,7 @@ def close_idle_lots(conn: sqlite3.Connection, how: Judging, now: datetime,
 
 
 # -- reading the reader's frames ----------------------------------------------------------------
-DEFAULT_UNIT = "g"
+DEFAULT_UNIT = ""   # no unit column: the values carry no unit and are taken to be in the rule's unit
 
 
 def texts(df: pd.DataFrame, col: str, n: int, default: str = "") -> list[str]:

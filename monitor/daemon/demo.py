@@ -109,18 +109,23 @@ def write_demo_config(root: Path, profiles: dict[str, dict[str, Any]], smtp_port
 
 # --------------------------------------------------------------------------------------------- SMTP sink
 class PrintingSink:
-    """aiosmtpd handler printing From / To / Subject and the first body lines of each message."""
+    """aiosmtpd handler printing From / To / Subject and the first body lines of each message, and saving
+    it in ``save_dir`` (when given) as ``email-NN.eml`` with its HTML part (``email-NN.html``, charts linked
+    to the saved ``email-NN-chart-K.png`` files)."""
 
-    def __init__(self, say: Callable[[str], None], body_lines: int = 4) -> None:
+    def __init__(self, say: Callable[[str], None], body_lines: int = 4, save_dir: Path | None = None) -> None:
         self.say = say
         self.body_lines = body_lines
+        self.save_dir = save_dir
         self.count = 0
+        self.saved: list[Path] = []
 
     async def handle_DATA(self, server: Any, session: Any, envelope: Any) -> str:  # noqa: N802 (aiosmtpd API)
         from email import message_from_bytes
         from email.policy import default
 
-        msg = message_from_bytes(envelope.content, policy=default)
+        raw: bytes = envelope.original_content or envelope.content
+        msg = message_from_bytes(raw, policy=default)
         self.count += 1
         body = msg.get_body(preferencelist=("plain",))
         text = body.get_content() if body is not None else ""
@@ -128,8 +133,41 @@ class PrintingSink:
         self.say(f"  e-mail #{self.count}  From: {msg['From']}  To: {msg['To']}")
         self.say(f"            Subject: {msg['Subject']}")
         for ln in first:
-            self.say(f"            | {ln[:100]}")
+            self.say(f"            | {ln}")
+        if self.save_dir is not None:
+            try:
+                names = save_message(raw, msg, self.save_dir, f"email-{self.count:02d}")
+            except OSError as exc:
+                self.say(f"            !! could not save this e-mail in {self.save_dir}: {exc}")
+            else:
+                self.saved.extend(names)
+                self.say(f"            saved: {', '.join(p.name for p in names)}")
         return "250 OK"
+
+
+def save_message(raw: bytes, msg: Any, folder: Path, stem: str) -> list[Path]:
+    """Write ``raw`` as ``stem.eml``, its HTML part as ``stem.html`` and its PNG parts as ``stem-chart-K.png``
+    in ``folder`` (names made here, never from message data); the HTML's ``cid:`` links point at the PNGs."""
+    folder.mkdir(parents=True, exist_ok=True)
+    out = [folder / f"{stem}.eml"]
+    out[0].write_bytes(raw)
+    links: dict[str, str] = {}
+    for k, part in enumerate((p for p in msg.walk() if p.get_content_type() == "image/png"), start=1):
+        png = folder / f"{stem}-chart-{k}.png"
+        png.write_bytes(part.get_content())
+        out.append(png)
+        cid = str(part.get("Content-ID", "")).strip().strip("<>")
+        if cid:
+            links[f"cid:{cid}"] = png.name
+    html_part = msg.get_body(preferencelist=("html",))
+    if html_part is not None:
+        html = html_part.get_content()
+        for cid, name in links.items():
+            html = html.replace(cid, name)
+        page = folder / f"{stem}.html"
+        page.write_text(html, encoding="utf-8")
+        out.insert(1, page)
+    return out
 
 
 # --------------------------------------------------------------------------------------------- the story
@@ -161,7 +199,7 @@ def describe_outcome(outcome: Any) -> str:
     if outcome is None:
         return "nothing"
     if isinstance(outcome, (list, tuple)):
-        return f"{len(outcome)} lot(s)" + "".join(
+        return f"{len(outcome)} {'lot' if len(outcome) == 1 else 'lots'}" + "".join(
             f"\n             {describe_verdict(o) if hasattr(o, 'verdict') else describe_outcome(o)}"
             for o in outcome)
     if hasattr(outcome, "describe"):
@@ -208,7 +246,7 @@ class AlertFollower:
             count += 1
             where = "/".join(x for x in (a.get("line"), a.get("product"), a.get("lot")) if x)
             extra = a.get("data", {}).get("reason") or a.get("data", {}).get("message") or ""
-            text = " ".join(x for x in (str(a.get("kind")), where, str(extra)[:90]) if x)
+            text = " ".join(x for x in (str(a.get("kind")), where, str(extra)) if x)
             self.story.say(f"alert logged: {text}")
         return count
 
@@ -269,7 +307,7 @@ def print_summary(rows: list[tuple[Any, ...]], say: Callable[[str], None]) -> No
         mean_s = "-" if mean is None else f"{mean:.2f}"
         tgt_s = "-" if target is None else f"{target:g}"
         say(f"{line:<5} {product:<10} {lot:<12} {n:>5} {mean_s:>10} {tgt_s:>8} {unit:<4} {verdict:<8} "
-            f"{str(reason)[:60]}")
+            f"{reason}")
     say(DISCLAIMER)
 
 
@@ -289,7 +327,8 @@ def run_demo(out: TextIO | None = None, *, workdir: Path | None = None, start: P
 
     from aiosmtpd.controller import Controller
 
-    sink = PrintingSink(story.say)
+    mail_dir = root / "e-mails"
+    sink = PrintingSink(story.say, save_dir=mail_dir)
     smtp_port = free_loopback_port()
     controller = Controller(sink, hostname="127.0.0.1", port=smtp_port)
     controller.start()
@@ -362,5 +401,8 @@ def run_demo(out: TextIO | None = None, *, workdir: Path | None = None, start: P
         th.join(15)
         log_file.close()
         controller.stop()
-    story.say(f"done: {daemon.files_done} files taken, {sink.count} e-mails received; files are in {root}")
+    if sink.saved:
+        story.say(f"e-mails received are saved in {mail_dir} (.eml, the HTML part and the chart PNGs)")
+    story.say(f"done: {daemon.files_done} {'file' if daemon.files_done == 1 else 'files'} taken, {sink.count} "
+              f"{'e-mail' if sink.count == 1 else 'e-mails'} received; files are in {root}")
     return 0 if ok and result.get("rc") == 0 else 1

@@ -39,7 +39,7 @@ from monitor.alerts.alert import Alert
 from monitor.daemon import accumulate, archive, judge
 from monitor.daemon.accumulate import Judging, Tally, lot_name
 from monitor.daemon.config import Config
-from monitor.daemon.store import Store, utc_iso
+from monitor.daemon.store import Store, inserted_id, utc_iso
 from monitor.errors import ExportError
 from monitor.lot import LotKey, Verdict
 from monitor.rulebook import RULE_KEYS, Rule, match_rule
@@ -215,17 +215,17 @@ class Intake:
         if not self._mark_duplicate(conn, it, now, at) and it.file_id is None:
             cur = conn.execute("INSERT INTO files(sha256, path, size, mtime, first_seen_at, state)"
                                " VALUES (?,?,?,?,?,'processing')", (it.sha, str(it.path), it.size, it.mtime, at))
-            it.file_id = int(cur.lastrowid)
+            it.file_id = inserted_id(cur)
 
     def _mark_duplicate(self, conn: sqlite3.Connection, it: _Item, now: datetime, at: str) -> bool:
-        first = conn.execute("SELECT id, path, processed_at FROM files WHERE sha256 = ? AND state = 'done'"
-                             " ORDER BY id LIMIT 1", (it.sha,)).fetchone()
+        first = conn.execute("SELECT id, path, processed_at, archived_path FROM files WHERE sha256 = ?"
+                             " AND state = 'done' ORDER BY id LIMIT 1", (it.sha,)).fetchone()
         if first is None:
             return False
         if it.file_id is None:
             cur = conn.execute("INSERT INTO files(sha256, path, size, mtime, first_seen_at, state)"
                                " VALUES (?,?,?,?,?,'duplicate')", (it.sha, str(it.path), it.size, it.mtime, at))
-            it.file_id = int(cur.lastrowid)
+            it.file_id = inserted_id(cur)
         target = self._plan_target(conn, self.config.state.archive, it.path.name, now)
         reason = (f"same content as file {first[0]} ({Path(first[1]).name}, processed {first[2]});"
                   " not counted again")
@@ -235,7 +235,9 @@ class Intake:
                     detail={"path": str(it.path), "sha256": it.sha, "duplicate_of": first[0]})
         alert = Alert(kind="file-duplicate", dedup_key=f"file-duplicate|{it.file_id}", created_at=at,
                       data={"file": it.path.name, "path": str(it.path), "sha256": it.sha, "reason": reason,
-                            "duplicate_of": {"id": first[0], "path": first[1], "processed_at": first[2]}})
+                            "archived_to": str(target),
+                            "duplicate_of": {"id": first[0], "path": first[1], "processed_at": first[2],
+                                             "archived_path": first[3]}})
         new = outbox.enqueue(conn, alert, self.config.alerts.channels)
         it.outcome = FileOutcome(str(it.path), "duplicate", file_id=it.file_id, sha256=it.sha, reason=reason,
                                  alerts=(alert.dedup_key,) if new else ())
@@ -283,6 +285,10 @@ class Intake:
     def _take(self, conn: sqlite3.Connection, it: _Item, now: datetime, at: str) -> None:
         how = self._judging()
         tally = Tally()
+        # the archive path is chosen first and recorded with the file: verdicts and alerts name the file
+        # where it will lie, and the move after the commit goes to exactly this path
+        target = self._plan_target(conn, self.config.state.archive, it.path.name, now)
+        conn.execute("UPDATE files SET archived_path=? WHERE id=?", (str(target), it.file_id))
         prev = conn.execute("SELECT id, sha256, processed_at FROM files WHERE path = ? AND state = 'done'"
                             " AND sha256 != ? ORDER BY id DESC LIMIT 1", (str(it.path), it.sha)).fetchone()
         status = "taken"
@@ -294,7 +300,7 @@ class Intake:
             alert = Alert(kind="file-revised", dedup_key=f"file-revised|{it.file_id}", created_at=at,
                           data={"file": it.path.name, "path": str(it.path), "sha256": it.sha,
                                 "reason": "a file at a known path arrived with different content;"
-                                          " its rows are counted as new rows",
+                                          " its rows are counted as new rows", "archived_to": str(target),
                                 "previous": {"id": prev[0], "sha256": prev[1], "processed_at": prev[2]}})
             if outbox.enqueue(conn, alert, how.channels):
                 tally.alerts.append(alert.dedup_key)
@@ -302,11 +308,10 @@ class Intake:
         kind = str(getattr(export, "kind", "values"))
         density = accumulate.density_of(export, it.profile)
         if kind == "summary":
-            n_values = accumulate.add_summaries(conn, how, file_id, str(it.path), export, density, at, tally)
+            n_values = accumulate.add_summaries(conn, how, file_id, str(target), export, density, at, tally)
         else:
             n_values = accumulate.add_values(conn, how, file_id, export, density, now, tally,
-                                             lambda: self._maybe_crash("mid-values", it.call), path=str(it.path))
-        target = self._plan_target(conn, self.config.state.archive, it.path.name, now)
+                                             lambda: self._maybe_crash("mid-values", it.call), path=str(target))
         n_bad = len(getattr(export, "bad_rows", ()) or ())
         conn.execute("UPDATE files SET state='done', processed_at=?, archived_path=?, kind=?, n_values=?,"
                      " n_bad_rows=? WHERE id=?", (at, str(target), kind, n_values, n_bad, file_id))
@@ -348,12 +353,18 @@ class Intake:
 
     # -- moves ---------------------------------------------------------------------------------
     def _finish_move(self, file_id: int, src: Path, target: Path, state: str, *, call: int = 0) -> str | None:
-        """Move ``src`` to its planned ``target`` (a free name beside it if taken); record it later."""
+        """Move ``src`` to exactly its recorded ``target``; record the move later.
+
+        The target was chosen free (on disk and in the files table) inside the file's transaction, and the
+        notices name it. Only if something outside lotwarden has put a file there since does this one go
+        beside it under a free name (never overwriting), with a warning; the files table then records that."""
         final = target
         try:
             if src.exists():
                 if target.exists():  # never overwrite: the file goes beside it under a free name
                     final = archive.free_name(target.parent, target.name)
+                    log.warning("archive target %s of file %s (id %s) is taken by a file lotwarden did not put"
+                                " there; moving it to %s instead", target, src, file_id, final)
                 archive.move_file(src, final)
             elif not target.exists():
                 log.warning("file %s (id %s) is neither in the drop folder nor at %s", src, file_id, target)

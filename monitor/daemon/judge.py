@@ -1,7 +1,8 @@
 """Judging a closed lot inside the intake's write transaction: stored values -> LotData -> Verdict -> rows.
 
-The verdict row, its audit record and the hold/review alert (outbox) are written on the caller's open
-connection, so they commit together with whatever closed the lot (a file's done mark, the idle job).
+The verdict row, its audit record, the hold/review alert and a ``verdict-changed`` alert (outbox) are
+written on the caller's open connection, so they commit together with whatever closed the lot (a file's
+done mark, the idle job).
 """
 
 from __future__ import annotations
@@ -10,16 +11,18 @@ import json
 import logging
 import math
 import sqlite3
-from typing import Callable, Sequence
+from dataclasses import replace
+from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
 
 from monitor.alerts import outbox
 from monitor.alerts.alert import Alert
+from monitor.daemon import rejudge
 from monitor.daemon.store import Store
-from monitor.lot import LotData, LotKey, LotSummary, Verdict, unjudged
+from monitor.lot import LotData, LotKey, LotSummary, Verdict, excluded_counts, unjudged
 from monitor.rulebook import Rule
-from monitor.units import conversion_factor
+from monitor.units import factor_to_rule_unit
 
 log = logging.getLogger("lotwarden.intake")
 
@@ -42,15 +45,22 @@ def load_lot_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, rule: Ru
 
     Returns ``(lot, problem)``; ``problem`` names why the lot cannot be judged (unconvertible units).
     Values are read ``FETCH_ROWS`` rows at a time into one float64 array; heads share one string per
-    distinct head, so a lot of a million values costs a few tens of MB, not hundreds.
+    distinct head, so a lot of a million values costs a few tens of MB, not hundreds. A row stored without
+    a usable value (``excluded`` names why) is a NaN in its place and counts in ``excluded_by``; its unit
+    plays no part in the conversion. Files are named where they lie (their archive path).
     """
-    pairs = conn.execute("SELECT unit, density, min(seq) AS first FROM lot_values WHERE lot_id = ?"
-                         " GROUP BY unit, density ORDER BY first", (lot_id,)).fetchall()
+    groups = conn.execute("SELECT unit, density, excluded, min(seq) AS first, count(*) FROM lot_values"
+                          " WHERE lot_id = ? GROUP BY unit, density, excluded ORDER BY first", (lot_id,)).fetchall()
+    pairs = [(u, d) for u, d, why, _first, _n in groups if not why]
+    excluded_by: dict[str, int] = {}
+    for _u, _d, why, _first, count in groups:
+        if why:
+            excluded_by[why] = excluded_by.get(why, 0) + int(count)
     files = tuple(r[0] for r in conn.execute(
-        "SELECT f.path FROM lot_values v JOIN files f ON f.id = v.file_id WHERE v.lot_id = ?"
-        " GROUP BY v.file_id ORDER BY min(v.seq)", (lot_id,)))
-    factor, problem = unit_factors([(u, d) for u, d, _first in pairs], rule)
-    per_row = problem is None and len(pairs) > 1 and bool(factor)
+        "SELECT COALESCE(f.archived_path, f.path) FROM lot_values v JOIN files f ON f.id = v.file_id"
+        " WHERE v.lot_id = ? GROUP BY v.file_id ORDER BY min(v.seq)", (lot_id,)))
+    factor, problem, _assumed = unit_factors(pairs, rule)
+    per_row = problem is None and len(pairs) > 1 and any(f != 1.0 for f in factor.values())
     cols = "value, head, unit, density" if per_row else "value, head"
     cur = conn.execute(f"SELECT {cols} FROM lot_values WHERE lot_id = ? ORDER BY seq", (lot_id,))
     chunks: list[np.ndarray] = []
@@ -60,50 +70,56 @@ def load_lot_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, rule: Ru
         rows = cur.fetchmany(FETCH_ROWS)
         if not rows:
             break
-        chunk = np.array([r[0] for r in rows], dtype=np.float64)  # NULL (non-finite as exported) -> nan
-        if per_row:
-            chunk *= np.array([factor[(r[-2], r[-1])] for r in rows], dtype=np.float64)
+        chunk = np.array([r[0] for r in rows], dtype=np.float64)  # NULL (non-finite, excluded) -> nan
+        if per_row:  # an excluded row's unit has no factor: its value is NaN whatever it is multiplied by
+            chunk *= np.array([factor.get((r[-2], r[-1]), 1.0) for r in rows], dtype=np.float64)
         chunks.append(chunk)
         heads.extend(shared.setdefault(r[1], r[1]) for r in rows)
         del rows
     values = np.concatenate(chunks) if chunks else np.empty(0, dtype=np.float64)
     del chunks
-    return lot_data(key, values, heads if any(shared) else None, [(u, d) for u, d, _f in pairs], files, rule,
-                    converted=per_row)
+    return lot_data(key, values, heads if any(shared) else None, pairs, files, rule, converted=per_row,
+                    excluded_by=excluded_by)
 
 
 def unit_factors(pairs: Sequence[tuple[str, float | None]], rule: Rule | None
-                 ) -> tuple[dict[tuple[str, float | None], float], str | None]:
-    """Factor from each (unit, density) to the rule's unit, and the first conversion problem (or None).
-    No factors when the rule names no unit."""
+                 ) -> tuple[dict[tuple[str, float | None], float], str | None, bool]:
+    """Factor from each (unit, density) to the rule's unit, the first conversion problem (or None), and
+    whether some values carried no unit (unit "") and were taken to be in the rule's unit.
+
+    ``monitor.units.factor_to_rule_unit`` decides each pair; with no rule, or a rule without a unit, every
+    factor is 1."""
     factor: dict[tuple[str, float | None], float] = {}
     problem = None
-    if rule is not None and rule.unit:
-        for u, d in pairs:
-            try:
-                factor[(u, d)] = conversion_factor(u, rule.unit, d)
-            except ValueError as exc:
-                factor[(u, d)] = math.nan
-                problem = problem or f"values in {u!r} cannot be judged in {rule.unit}: {exc}"
-    return factor, problem
+    assumed = False
+    rule_unit = rule.unit if rule is not None else ""
+    for u, d in pairs:
+        try:
+            factor[(u, d)], took = factor_to_rule_unit(u, rule_unit, d)
+        except ValueError as exc:
+            factor[(u, d)], took = math.nan, False
+            problem = problem or f"values in {u!r} cannot be judged in {rule_unit}: {exc}"
+        assumed = assumed or took
+    return factor, problem, assumed
 
 
 def lot_data(key: LotKey, values: np.ndarray, heads: Sequence[str] | None,
              pairs: Sequence[tuple[str, float | None]], files: tuple[str, ...], rule: Rule | None, *,
-             converted: bool = False) -> tuple[LotData, str | None]:
+             converted: bool = False, excluded_by: Mapping[str, int] | None = None) -> tuple[LotData, str | None]:
     """LotData in the rule's unit from stored values whose (unit, density) pairs are ``pairs`` in order of
-    first use; with one pair the whole array is scaled here (``converted``: the caller did it per row)."""
-    factor, problem = unit_factors(pairs, rule)
-    if problem is None and factor:
+    first use; with one pair the whole array is scaled here (``converted``: the caller did it per row).
+    ``excluded_by`` counts the lot's rows without a usable value per reason."""
+    factor, problem, assumed = unit_factors(pairs, rule)
+    if problem is None and rule is not None and rule.unit:
         if not converted and len(pairs) == 1:
             f = factor[(pairs[0][0], pairs[0][1])]
             if f != 1.0:
                 values = values * f
-        unit = rule.unit if rule is not None else "g"
+        unit = rule.unit
     else:
-        unit = pairs[0][0] if pairs else (rule.unit if rule else "g")
+        unit = next((u for u, _d in pairs if u), rule.unit if rule is not None else "")
     return LotData(key=key, values=values, heads=tuple(heads) if heads is not None else None, files=files,
-                   unit=unit), problem
+                   unit=unit, unit_assumed=assumed, excluded_by=dict(excluded_by or {})), problem
 
 
 class RecentValues:
@@ -120,8 +136,9 @@ class RecentValues:
         self.size = 0
 
     def add(self, lot_id: int, seq0: int, values: np.ndarray, heads: list[str], units: list[str],
-            density: float | None, file_id: int, path: str) -> None:
-        """Rows just inserted for ``lot_id`` from ``seq0``: values as read (non-finite are stored as NULL)."""
+            density: float | None, file_id: int, path: str, excluded: Sequence[str] | None = None) -> None:
+        """Rows just inserted for ``lot_id`` from ``seq0``: values as read (non-finite are stored as NULL);
+        ``excluded`` gives each row's exclusion reason ("" for a usable value), as stored."""
         entry = self.lots.pop(lot_id, None)
         if entry is not None:
             self.size -= entry.n
@@ -129,10 +146,16 @@ class RecentValues:
             entry = _Recent()
         if entry is None or entry.n != seq0 - 1 or entry.n + len(values) > RECENT_LOT_MAX or not units:
             return
-        pair = (units[0], density)
-        if units.count(units[0]) != len(units) or (entry.pairs and entry.pairs[0] != pair):
-            return  # mixed units: the store's per-row conversion handles those
-        entry.pairs = [pair]
+        why = list(excluded) if excluded is not None else [""] * len(units)
+        usable = [u for u, w in zip(units, why) if not w] if any(why) else units
+        if usable:
+            pair = (usable[0], density)
+            if usable.count(usable[0]) != len(usable) or (entry.pairs and entry.pairs[0] != pair):
+                return  # mixed units: the store's per-row conversion handles those
+            entry.pairs = [pair]
+        for w in why:
+            if w:
+                entry.excluded_by[w] = entry.excluded_by.get(w, 0) + 1
         entry.values.append(np.where(np.isfinite(values), values, np.nan))
         entry.heads.extend(heads)
         if file_id not in entry.file_ids:
@@ -169,33 +192,59 @@ class _Recent:
         self.pairs: list[tuple[str, float | None]] = []
         self.files: list[str] = []
         self.file_ids: list[int] = []
+        self.excluded_by: dict[str, int] = {}
 
     def lot_data(self, key: LotKey, rule: Rule | None) -> tuple[LotData, str | None]:
         """The same LotData ``load_lot_values`` would read from the store."""
         values = np.concatenate(self.values) if self.values else np.empty(0, dtype=np.float64)
-        return lot_data(key, values, self.heads if any(self.heads) else None, self.pairs, tuple(self.files), rule)
+        return lot_data(key, values, self.heads if any(self.heads) else None, self.pairs, tuple(self.files), rule,
+                        excluded_by=self.excluded_by)
 
 
 def summary_lot(key: LotKey, n: int, mean: float, sd: float, unit: str, density: float | None,
                 rule: Rule | None, file_path: str) -> tuple[LotData, str | None]:
-    """A lot known only by n / mean / sd, in the rule's unit when it can be converted."""
+    """A lot known only by n / mean / sd, in the rule's unit when it can be converted (a summary without a
+    unit is taken to be in the rule's unit: ``unit_assumed``)."""
     problem = None
-    if rule is not None and rule.unit:
-        try:
-            f = conversion_factor(unit, rule.unit, density)
-            mean, sd, unit = mean * f, sd * abs(f), rule.unit
-        except ValueError as exc:
-            problem = f"values in {unit!r} cannot be judged in {rule.unit}: {exc}"
+    rule_unit = rule.unit if rule is not None else ""
+    try:
+        f, assumed = factor_to_rule_unit(unit, rule_unit, density)
+        if rule_unit:
+            mean, sd, unit = mean * f, sd * abs(f), rule_unit
+    except ValueError as exc:
+        assumed = False
+        problem = f"values in {unit!r} cannot be judged in {rule_unit}: {exc}"
     return LotData(key=key, summary=LotSummary(int(n), float(mean), float(sd)), files=(file_path,),
-                   unit=unit), problem
+                   unit=unit, unit_assumed=assumed), problem
+
+
+def unusable_summary(lot: LotData, rule: Rule | None, problem: str) -> Verdict:
+    """The `review` verdict of a summary record whose n / mean / sd cannot be used (never left out)."""
+    meta: dict[str, Any] = {}
+    if rule is not None:
+        meta = {"rule_name": rule.name, "rule_version": rule.version, "target": rule.target,
+                "alternative": rule.alternative, "alpha": rule.alpha}
+    return unjudged(lot, f"the lot summary is not usable: {problem}", **meta)
 
 
 def judge(lot: LotData, rule: Rule | None, problem: str | None, evaluate: Evaluator) -> Verdict:
-    """The verdict on one lot; never raises (an engine failure becomes a `review` naming it)."""
+    """The verdict on one lot; never raises (an engine failure becomes a `review` naming it).
+
+    ``unit_assumed`` and ``excluded_by`` always come from the lot as the store knows it."""
+    return with_lot_facts(_judge(lot, rule, problem, evaluate), lot)
+
+
+def with_lot_facts(verdict: Verdict, lot: LotData) -> Verdict:
+    """``verdict`` with the lot's ``unit_assumed`` and its exclusion counts (all four reasons)."""
+    return replace(verdict, unit_assumed=lot.unit_assumed,
+                   excluded_by=excluded_counts(lot.excluded_by, verdict.excluded))
+
+
+def _judge(lot: LotData, rule: Rule | None, problem: str | None, evaluate: Evaluator) -> Verdict:
     if rule is None:
         return unjudged(lot, no_rule_reason(lot.key.product))
-    meta = dict(rule_name=rule.name, rule_version=rule.version, target=rule.target,
-                alternative=rule.alternative, alpha=rule.alpha)
+    meta: dict[str, Any] = {"rule_name": rule.name, "rule_version": rule.version, "target": rule.target,
+                            "alternative": rule.alternative, "alpha": rule.alpha}
     if problem is not None:
         return unjudged(lot, problem, **meta)
     try:
@@ -216,8 +265,14 @@ def alert_values(lot: LotData) -> list[float | None]:
 
 def record_verdict(conn: sqlite3.Connection, verdict: Verdict, rule: Rule | None, lot: LotData, *, at: str,
                    channels: Sequence[str], lot_id: int | None = None, summary_id: int | None = None,
-                   close_reason: str | None = None, file_id: int | None = None) -> Alert | None:
-    """Write the verdict row, its audit record and (hold / review) its alert; return the alert if new."""
+                   close_reason: str | None = None, file_id: int | None = None, lot_rows: int | None = None,
+                   previous: rejudge.Previous | None = None, why: str = "") -> list[Alert]:
+    """Write the verdict row, its audit record, its alert (hold / review) and, when it replaces an earlier
+    hold or review of the lot with a different verdict (``previous``), the ``verdict-changed`` alert;
+    return the alerts that are new.
+
+    A hold / review is told once per lot and rule version (dedup key), and once more each time it follows
+    a different verdict of the lot (hold, pass, hold again: the second hold is told too)."""
     payload = verdict.to_json()
     key = verdict.key
     rule_name = rule.name if rule else ""
@@ -225,17 +280,36 @@ def record_verdict(conn: sqlite3.Connection, verdict: Verdict, rule: Rule | None
     rule_hash = rule.content_hash if rule else ""
     conn.execute(
         "INSERT INTO verdicts(decided_at, line, product, lot, rule, rule_version, rule_hash, verdict, n, mean,"
-        " target, unit, payload, lot_id, summary_id, close_reason) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
+        " target, unit, payload, lot_id, summary_id, close_reason, lot_rows)"
+        " VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
         (at, key.line, key.product, key.lot, rule_name, version, rule_hash, verdict.verdict, verdict.n,
          payload["mean"], payload["target"], verdict.unit, json.dumps(payload, sort_keys=True, allow_nan=False),
-         lot_id, summary_id, close_reason))
+         lot_id, summary_id, close_reason, lot_rows))
+    detail: dict[str, Any] = {
+        "verdict": verdict.verdict, "rule": rule_name, "rule_version": version, "rule_hash": rule_hash,
+        "n": verdict.n, "mean": payload["mean"], "p_value": payload["p_value"], "reason": verdict.reason,
+        "close_reason": close_reason, "unit_assumed": payload["unit_assumed"], "excluded": payload["excluded"],
+        "excluded_by": payload["excluded_by"]}
+    if previous is not None:
+        detail["replaces"] = {"verdict_id": previous.verdict_id, "verdict": previous.verdict,
+                              "decided_at": previous.decided_at, "why": why}
     Store.audit(conn, at, "verdict", file_id=file_id, line=key.line, product=key.product, lot=key.lot,
-                detail={"verdict": verdict.verdict, "rule": rule_name, "rule_version": version,
-                        "rule_hash": rule_hash, "n": verdict.n, "mean": payload["mean"],
-                        "p_value": payload["p_value"], "reason": verdict.reason, "close_reason": close_reason})
-    if verdict.verdict not in ("hold", "review"):
-        return None
-    alert = Alert(kind=verdict.verdict, dedup_key=f"{verdict.verdict}|{key.line}|{key.product}|{key.lot}|{version}",
-                  created_at=at, data={**payload, "values": alert_values(lot)}, line=key.line,
-                  product=key.product, lot=key.lot)
-    return alert if outbox.enqueue(conn, alert, channels) else None
+                detail=detail)
+    new: list[Alert] = []
+    values: list[float | None] | None = None
+    changed = rejudge.changed_alert(verdict, payload, previous, why, at) if previous is not None else None
+    if changed is not None:
+        values = alert_values(lot)
+        changed = replace(changed, data={**changed.data, "values": values})
+        if outbox.enqueue(conn, changed, channels):
+            new.append(changed)
+    if verdict.verdict in ("hold", "review"):
+        dedup = f"{verdict.verdict}|{key.line}|{key.product}|{key.lot}|{version}"
+        if previous is not None and previous.verdict != verdict.verdict:
+            dedup += f"|after-{previous.verdict_id}"  # held again after a pass: told again, once per change
+        alert = Alert(kind=verdict.verdict, dedup_key=dedup,
+                      created_at=at, data={**payload, "values": alert_values(lot) if values is None else values},
+                      line=key.line, product=key.product, lot=key.lot)
+        if outbox.enqueue(conn, alert, channels):
+            new.append(alert)
+    return new

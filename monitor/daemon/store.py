@@ -26,7 +26,7 @@ from typing import Any, Iterator
 from monitor.alerts import outbox
 
 DB_NAME = "lotwarden.db"
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 BUSY_TIMEOUT_MS = 30_000
 
 SCHEMA = """
@@ -81,13 +81,14 @@ CREATE TABLE IF NOT EXISTS lot_values (
     product     TEXT NOT NULL,
     lot         TEXT NOT NULL,
     seq         INTEGER NOT NULL,            -- arrival order within the lot, 1-based
-    value       REAL,                        -- as exported (NULL for a non-finite value)
+    value       REAL,                        -- as exported (NULL for a non-finite value or an excluded row)
     unit        TEXT NOT NULL,
     density     REAL,                        -- g/mL from the feed profile, for mass <-> volume
     head        TEXT NOT NULL DEFAULT '',
     timestamp   TEXT,
     file_id     INTEGER NOT NULL REFERENCES files(id),
     source_line INTEGER,
+    excluded    TEXT NOT NULL DEFAULT '',    -- why the row has no usable value (monitor.lot.EXCLUSION_REASONS)
     UNIQUE (lot_id, seq)
 );
 CREATE TABLE IF NOT EXISTS lot_summaries (
@@ -102,7 +103,8 @@ CREATE TABLE IF NOT EXISTS lot_summaries (
     sd          REAL,
     unit        TEXT NOT NULL,
     density     REAL,
-    timestamp   TEXT
+    timestamp   TEXT,
+    problem     TEXT NOT NULL DEFAULT ''     -- why the record cannot be used ("" when fine)
 );
 CREATE TABLE IF NOT EXISTS verdicts (
     id           INTEGER PRIMARY KEY,
@@ -121,7 +123,8 @@ CREATE TABLE IF NOT EXISTS verdicts (
     payload      TEXT NOT NULL,              -- json of Verdict.to_json()
     lot_id       INTEGER REFERENCES lots(id),
     summary_id   INTEGER REFERENCES lot_summaries(id),
-    close_reason TEXT
+    close_reason TEXT,
+    lot_rows     INTEGER                     -- rows of the lot stored when it was judged (values lots)
 );
 CREATE INDEX IF NOT EXISTS verdicts_lot ON verdicts(line, product, lot);
 CREATE TABLE IF NOT EXISTS audit (
@@ -138,6 +141,32 @@ CREATE TABLE IF NOT EXISTS audit (
     detail  TEXT NOT NULL DEFAULT '{}'       -- JSON object
 );
 """
+
+# Columns added after schema version 1: (table, column, declaration). ``Store.open`` adds any that an older
+# database lacks (ALTER TABLE ... ADD COLUMN keeps every row; the default fills the old ones).
+ADDED_COLUMNS: tuple[tuple[str, str, str], ...] = (
+    ("lot_values", "excluded", "TEXT NOT NULL DEFAULT ''"),
+    ("lot_summaries", "problem", "TEXT NOT NULL DEFAULT ''"),
+    ("verdicts", "lot_rows", "INTEGER"),
+)
+
+
+def add_missing_columns(conn: sqlite3.Connection) -> list[str]:
+    """Add the columns of ``ADDED_COLUMNS`` an older database lacks (inside a write); return ``table.column``s added."""
+    added = []
+    for table, column, decl in ADDED_COLUMNS:
+        have = {r[1] for r in conn.execute(f"PRAGMA table_info({table})")}
+        if column not in have:
+            conn.execute(f"ALTER TABLE {table} ADD COLUMN {column} {decl}")
+            added.append(f"{table}.{column}")
+    return added
+
+
+def inserted_id(cur: sqlite3.Cursor) -> int:
+    """The rowid of the row an INSERT on ``cur`` just wrote."""
+    if cur.lastrowid is None:
+        raise RuntimeError("no row was inserted")
+    return int(cur.lastrowid)
 
 
 def utc_iso(moment: datetime) -> str:
@@ -176,7 +205,10 @@ class Store:
                 if stmt.strip():
                     c.execute(stmt)
             outbox.ensure_schema(c)
-            c.execute("INSERT OR IGNORE INTO meta(key, value) VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
+            add_missing_columns(c)
+            c.execute("INSERT INTO meta(key, value) VALUES ('schema_version', ?) ON CONFLICT(key) DO UPDATE"
+                      " SET value = excluded.value WHERE CAST(value AS INTEGER) < CAST(excluded.value AS INTEGER)",
+                      (str(SCHEMA_VERSION),))
         return store
 
     @contextmanager

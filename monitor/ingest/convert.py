@@ -9,6 +9,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from monitor.ingest.frames import repeat_text
 from monitor.ingest.table import FRAME_TEXT, TEXT
 from monitor.units import canonical_unit
 
@@ -17,6 +18,7 @@ OK, NOT_NUMBER, NOT_FINITE = 0, 1, 2
 _NUMBER = r"^[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?$"
 _NON_FINITE = r"(?i)^[+-]?(inf|infinity|nan)$"
 _ISO_SPACE = r"^([0-9]{4}-[0-9]{2}-[0-9]{2}) "
+_SPELLING_ROWS = 10_000  # from this many cells a unit column is first checked for one spelling throughout
 _ISO_DATE = r"^[0-9]{4}(-[0-9]{2}-[0-9]{2}|[0-9]{4})([T ]|$)"
 
 
@@ -37,6 +39,20 @@ def may_need_trim(text: pa.ChunkedArray) -> bool:
             continue
         b = np.frombuffer(data, dtype=np.uint8)
         if b.min() < 0x21 or b.max() > 0x7E:
+            return True
+    return False
+
+
+def any_empty(text: pa.ChunkedArray) -> bool:
+    """True when some cell is the empty string, read off the offsets (no length array of a million cells)."""
+    for chunk in text.chunks:
+        if len(chunk) == 0:
+            continue
+        if chunk.null_count or not (pa.types.is_large_string(chunk.type) or pa.types.is_string(chunk.type)):
+            return True  # cannot tell from offsets: let the caller look properly
+        kind = np.int64 if pa.types.is_large_string(chunk.type) else np.int32
+        offs = np.frombuffer(chunk.buffers()[1], dtype=kind)[chunk.offset:chunk.offset + len(chunk) + 1]
+        if (offs[1:] == offs[:-1]).any():
             return True
     return False
 
@@ -78,17 +94,61 @@ def parse_units(text: pa.ChunkedArray, default: str) -> tuple[pa.ChunkedArray, n
 
     ``text`` may be untrimmed: each distinct spelling is stripped once.
     """
-    uniques = pc.unique(text).to_pylist()
+    same = one_spelling(text) if len(text) >= _SPELLING_ROWS else None
+    uniques = [same] if same is not None else pc.unique(text).to_pylist()
     table = {u: (canonical_unit(u) if u.strip() else default) for u in uniques}
     if len(uniques) == 1:  # the usual case: one unit for the whole file
         unit = table[uniques[0]]
-        return pa.repeat(pa.scalar(unit or "", FRAME_TEXT), len(text)), np.full(len(text), unit is None)
+        return repeat_text(unit or "", len(text)), np.full(len(text), unit is None)
     known = [u for u, c in table.items() if c is not None]
     good = pc.is_in(text, value_set=pa.array(known, TEXT)).to_numpy(zero_copy_only=False)
     index = pc.index_in(text, value_set=pa.array(known, TEXT))
     canon = pa.array([table[u] for u in known], TEXT)
     units = canon.take(pc.fill_null(index, 0)) if known else pa.repeat("", len(text))
     return units, ~good
+
+
+def one_spelling(text: pa.ChunkedArray) -> str | None:
+    """The text of every cell when all cells are the same, else None (also for no cells).
+
+    Read off the raw buffers (offsets evenly spaced, data the one cell repeated): no hashing of a million
+    cells for the usual unit column of one spelling.
+    """
+    first: bytes | None = None
+    for chunk in text.chunks:
+        if len(chunk) == 0:
+            continue
+        if chunk.null_count or not pa.types.is_large_string(chunk.type) and not pa.types.is_string(chunk.type):
+            return None
+        _, offs_buf, data = chunk.buffers()
+        kind = np.int64 if pa.types.is_large_string(chunk.type) else np.int32
+        offs = np.frombuffer(offs_buf, dtype=kind)[chunk.offset:chunk.offset + len(chunk) + 1]
+        start, width = int(offs[0]), int(offs[1] - offs[0])
+        cell = b"" if data is None else data[start:start + width].to_pybytes()
+        if first is None:
+            first = cell
+        if cell != first or not np.array_equal(offs - start, np.arange(len(offs), dtype=kind) * width):
+            return None
+        if width and data[start:int(offs[-1])] != pa.py_buffer(cell * len(chunk)):
+            return None
+    return None if first is None else first.decode("utf-8")
+
+
+def iso_parts(text: pa.ChunkedArray, parts: int) -> list[pa.ChunkedArray]:
+    """``text`` cut into ``parts`` runs of whole chunks, each to be checked with ``all_iso`` on its own thread."""
+    chunks = text.chunks
+    step = -(-len(chunks) // parts) if chunks else 1
+    return [pa.chunked_array(chunks[i:i + step], text.type) for i in range(0, len(chunks), step)]
+
+
+def all_iso(text: pa.ChunkedArray) -> bool:
+    """True when no cell is empty and every cell is ISO 8601 without a zone (see parse_timestamps)."""
+    return len(text) > 0 and _all_iso(text)
+
+
+def iso_text(text: pa.ChunkedArray) -> tuple[pa.ChunkedArray, np.ndarray]:
+    """What parse_timestamps gives (without a format) for a column that ``all_iso`` accepted."""
+    return _iso_t(text), np.zeros(len(text), bool)
 
 
 def parse_timestamps(text: pa.ChunkedArray, fmt: str | None) -> tuple[pa.ChunkedArray, np.ndarray]:

@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import functools
+
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -48,8 +51,24 @@ def str_array(arr: pa.Array | pa.ChunkedArray) -> pd.api.extensions.ExtensionArr
 
 
 def repeat_text(text: str, n: int) -> pa.Array:
-    """``text`` ``n`` times, in the frames' string type."""
-    return pa.repeat(pa.scalar(text, FRAME_TEXT), n)
+    """``text`` ``n`` times, in the frames' string type (built from two numpy buffers: no per-row work).
+
+    Arrow arrays are immutable, so the small ones are kept and handed out again (a file's "" and unit columns).
+    """
+    if n <= SMALL_FRAME_ROWS:
+        return _repeat_small(text, n)
+    return _repeat(text, n)
+
+
+@functools.lru_cache(maxsize=64)
+def _repeat_small(text: str, n: int) -> pa.Array:
+    return _repeat(text, n)
+
+
+def _repeat(text: str, n: int) -> pa.Array:
+    raw = text.encode("utf-8")
+    offsets = np.arange(0, (n + 1) * len(raw), max(len(raw), 1), dtype=np.int64) if raw else np.zeros(n + 1, np.int64)
+    return pa.Array.from_buffers(FRAME_TEXT, n, [None, pa.py_buffer(offsets), pa.py_buffer(raw * n)])
 
 
 def empty_frame(columns: tuple[str, ...]) -> pd.DataFrame:

@@ -28,8 +28,11 @@ PROFILE_KEYS: dict[str, tuple[Any, str]] = {
     "skip_lines": (0, "lines before the header to skip (whole number >= 0)"),
     "header_prefix": ("", "the header is the first line (after skip_lines) starting with this text"),
     "columns": ({}, "table mapping canonical names (" + ", ".join(CANONICAL_COLUMNS) + ") to the export's headers"),
-    "unit": ("g", f"unit of the values when the file has no unit column: {ALLOWED_UNITS}"),
-    "tare": (0.0, "subtracted from every value (gross -> net), in `unit` (finite number >= 0)"),
+    "unit": (None, (f"unit of the values when the file has no unit column (or a blank unit cell): {ALLOWED_UNITS}; "
+                    "default none: values carry no unit, are taken to be in the judging rule's unit, and each lot "
+                    "says so")),
+    "tare": (0.0, ("subtracted from every value (gross -> net), in `unit` (converted to each row's unit), or as "
+                   "it stands when no unit is declared (finite number >= 0)")),
     "density": (None, "product density in g/mL, for converting weighed mass to a volume unit later (> 0)"),
     "drop_values": ((), 'raw values meaning "no measurement" (e.g. ["-9999", "ERR"]): dropped and counted'),
     "max_bad_rows": (0.05, "bad rows tolerated: a whole number, or a fraction in [0, 1) of the data rows"),
@@ -51,7 +54,7 @@ class FeedProfile:
     skip_lines: int = 0
     header_prefix: str = ""
     columns: tuple[tuple[str, str], ...] = ()
-    unit: str = "g"
+    unit: str | None = None  # None: no unit declared (values carry none; see monitor.units.factor_to_rule_unit)
     tare: float = 0.0
     density: float | None = None
     drop_values: tuple[str, ...] = ()

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Literal
@@ -15,15 +16,29 @@ from monitor.errors import ExportError
 from monitor.ingest import convert
 from monitor.ingest.profile import CANONICAL_COLUMNS, DEFAULT_PROFILE, FeedProfile
 from monitor.ingest.frames import empty_frame, frame_of, repeat_text, str_array
-from monitor.ingest.table import TEXT, RawTable, split_body
+from monitor.ingest.table import FRAME_TEXT, TEXT, RawTable, split_body
 from monitor.ingest.text import Header, decode, find_header
 from monitor.units import ALLOWED as ALLOWED_UNITS
 from monitor.units import conversion_factor
 
-ROW_COLUMNS = ("source_line", "lot", "value", "timestamp", "product", "line", "head", "unit")
-SUMMARY_COLUMNS = ("source_line", "lot", "n", "mean", "sd", "product", "line", "unit", "timestamp")
+ROW_COLUMNS = ("source_line", "lot", "value", "timestamp", "product", "line", "head", "unit", "excluded")
+SUMMARY_COLUMNS = ("source_line", "lot", "n", "mean", "sd", "product", "line", "unit", "timestamp", "problem")
+# Why a row of a lot carries no usable value (the ``excluded`` column; monitor.lot.EXCLUSION_REASONS).
+BLANK, NOT_A_NUMBER, NOT_FINITE, DROPPED, PROBLEM = 1, 2, 3, 4, 5
+EXCLUDED_TEXT = ("", "blank", "not_a_number", "not_finite", "dropped_value")
 _MAX_N = 2**53  # the largest n that float64 holds exactly
 _GIVE_BACK_ROWS = 50_000
+# From this many rows the independent column work (units, timestamps, frame columns) runs on worker threads:
+# Arrow's compute functions let go of the GIL, so a large file's columns are converted side by side.
+PARALLEL_ROWS = 200_000
+_POOL: list[ThreadPoolExecutor] = []
+
+
+def _pool() -> ThreadPoolExecutor:
+    """The reader's two worker threads, started on first use."""
+    if not _POOL:
+        _POOL.append(ThreadPoolExecutor(max_workers=2, thread_name_prefix="lotwarden-reader"))
+    return _POOL[0]
 
 
 @dataclass(frozen=True)
@@ -38,7 +53,15 @@ class BadRow:
 
 @dataclass(frozen=True, eq=False)
 class Export:
-    """One export file, read: measurements (kind "values") or lot summaries (kind "summary")."""
+    """One export file, read: measurements (kind "values") or lot summaries (kind "summary").
+
+    ``rows`` (ROW_COLUMNS) holds every data row that has a lot code and no problem outside its value: a row
+    whose value is blank, not a number, not finite or one of the profile's ``drop_values`` is kept with value
+    NaN and its reason in ``excluded`` ("" for a usable value). ``unit`` is "" when the value carries no unit
+    (no unit column or a blank cell, and no profile ``unit``). ``summaries`` (SUMMARY_COLUMNS) likewise keeps
+    a record whose n / mean / sd cannot be used, with the plain reason in ``problem`` ("" when fine), such
+    numbers as NaN and n as 0. Excluded rows (but for drop_values, counted in ``dropped``) are bad rows too.
+    """
 
     path: str
     kind: Literal["values", "summary"]
@@ -74,7 +97,10 @@ def _read(holder: list[bytes], name: str, profile: FeedProfile | None) -> Export
     buf = decode(holder.pop(), prof, name)
     header = find_header(buf, prof, name)
     index, kind = _resolve_columns(header, prof, name)
-    rows = _Rows(split_body(buf, header, name), header, index, kind, prof, name)
+    # The value column may be parsed straight into numbers (threaded, in the parser) when no cell of it needs
+    # its text: no 'no measurement' texts to compare and the decimal point that the parser reads.
+    numbers = (index["value"],) if kind == "values" and prof.decimal == "." and not prof.drop_values else ()
+    rows = _Rows(split_body(buf, header, name, numbers), header, index, kind, prof, name)
     del buf
     _give_back(rows.n)
     return rows.build()
@@ -141,6 +167,8 @@ class _Rows:
         self.clean = raw.clean
         self.n = raw.size
         self.code = np.zeros(self.n, dtype=np.int16)      # 0 = good; else 1 + index into self.reasons
+        self.excl = np.zeros(self.n, dtype=np.int8)       # > 0: kept without a usable value (BLANK ... PROBLEM)
+        self.iso: list[Future[bool]] = []                 # a large file's ISO timestamp check, run in parts
         self.reasons: list[tuple[str, str, pa.ChunkedArray]] = []  # (canonical column, reason template, raw text)
         self.trimmed: dict[str, pa.ChunkedArray] = {}
         # A line holding only the end-of-lot text (no delimiters) is a marker, not a row with too few fields.
@@ -159,48 +187,80 @@ class _Rows:
             self.trimmed[canon] = convert.trim(col) if not self.clean and convert.may_need_trim(col) else col
         return self.trimmed[canon]
 
-    def flag(self, mask: np.ndarray, canon: str, reason: str) -> None:
-        """Mark rows as bad with ``reason`` ("{v}" is replaced by the raw field) unless already bad."""
-        fresh = mask & (self.code == 0)
+    def flag(self, mask: np.ndarray, canon: str, reason: str, excluded: int = 0) -> None:
+        """Mark rows as bad with ``reason`` ("{v}" is replaced by the raw field) unless already bad.
+
+        ``excluded`` > 0: a problem of the row's value only, so the row is kept (value NaN) with that reason.
+        Otherwise the row is left out, and a 'no measurement' row (drop_values) with this problem becomes a
+        bad row instead of a dropped one.
+        """
+        if not mask.any():
+            return
+        fresh = mask & ((self.code == 0) if excluded else ((self.code == 0) | (self.code == -2)))
         if fresh.any():
             self.reasons.append((canon, reason, self.columns[self.index[canon]]))  # type: ignore[arg-type]
             self.code[fresh] = len(self.reasons)
+            self.excl[fresh] = excluded
 
     def build(self) -> Export:
         prof = self.prof
+        pool = _pool() if self.n >= PARALLEL_ROWS else None
+        stamp_text = self.text("timestamp")
+        early: dict[str, Future[tuple[pa.ChunkedArray, np.ndarray]]] = {}
+        if pool is not None:  # pure conversions, started now; their rows are flagged below, in order
+            if stamp_text is not None and prof.timestamp_format is None:  # the usual ISO column: two halves
+                self.iso = [pool.submit(convert.all_iso, part) for part in convert.iso_parts(stamp_text, 2)]
+            elif stamp_text is not None:
+                early["timestamp"] = pool.submit(convert.parse_timestamps, stamp_text, prof.timestamp_format)
+            if "unit" in self.index:
+                early["unit"] = pool.submit(convert.parse_units, self.columns[self.index["unit"]],
+                                            prof.unit or "")
         lot = self.text("lot")
         marker = np.zeros(self.n, dtype=bool)
         if prof.end_of_lot is not None:
             marker = pc.equal(lot, prof.end_of_lot).to_numpy(zero_copy_only=False)
         self.code[marker] = -1
-        lot_empty = pc.equal(pc.binary_length(lot), 0).to_numpy(zero_copy_only=False)
-        self.code[self._blank(lot_empty)] = -3
-        self.flag(lot_empty, "lot", "empty lot code — every measurement needs its lot")
-        del lot_empty
+        if convert.any_empty(lot):
+            lot_empty = pc.equal(pc.binary_length(lot), 0).to_numpy(zero_copy_only=False)
+            self.code[self._blank(lot_empty)] = -3
+            self.flag(lot_empty, "lot", "empty lot code — every measurement needs its lot")
+            del lot_empty
         main = "value" if self.kind == "values" else "mean"
-        dropped = np.zeros(self.n, dtype=bool)
         if prof.drop_values:
             dropped = pc.is_in(self.text(main), value_set=pa.array(prof.drop_values, TEXT)).to_numpy(
                 zero_copy_only=False) & (self.code == 0)
             self.code[dropped] = -2
-        values = self._number(main)
-        units = self._units()
+            del dropped
+        values, status = self._parse(main)
+        # Problems outside the measured numbers first: such a row is left out. The numbers are flagged
+        # last, so a row flagged there has no other problem and is kept without a usable value.
+        units = self._units(early.get("unit"))
         values = self._subtract_tare(values, units)
-        stamps = self._timestamps()
+        stamps = self._timestamps(early.get("timestamp"))
         extra: dict[str, np.ndarray] = {}
-        if self.kind == "summary":
-            n_val = self._number("n", integer=True)
-            sd_val = self._number("sd")
-            self.flag(sd_val < 0, "sd", "sd '{v}' is negative — must be >= 0")
-            extra = {"n": n_val, "sd": sd_val}
-        good = self.code == 0
+        if self.kind == "values":
+            self._flag_number(main, status)
+        else:
+            extra = self._summary_numbers(status)
+        dropped = self.code == -2
+        self.excl[dropped] = DROPPED
+        keep = (self.code == 0) | (self.excl > 0)
+        values = np.where(dropped, np.nan, values) if dropped.any() else values
+        good = int((self.code == 0).sum())
         bad_count = int((self.code > 0).sum()) + len(self.problems)
-        data_rows = int((self.code >= 0).sum() + (self.code == -2).sum()) + len(self.problems)
-        self._check_budget(bad_count, data_rows, int(good.sum()), int(dropped.sum()))
+        if self.kind == "summary":
+            # An unusable summary record is still reported (a `review` lot naming its problem) and listed in
+            # bad_rows, but it costs no measurement: it neither uses up the bad-row budget nor leaves a file
+            # of such records "without usable rows".
+            reported = int(((self.code > 0) & (self.excl > 0)).sum())
+            bad_count, good = bad_count - reported, good + reported
+        data_rows = int((self.code >= 0).sum() + dropped.sum()) + len(self.problems)
+        self._check_budget(bad_count, data_rows, good, int(dropped.sum()))
         bad_rows, markers = self._bad_rows(), self._markers(marker)
         del lot
+        why = self._why(keep)  # before the raw columns are let go: a summary's problem names its raw text
         self._release(keep=("lot", "product", "line", "head"))
-        frame = self._frame(good, values, units, stamps, extra)
+        frame = self._frame(keep, values, units, stamps, extra, why, pool)
         rows, summaries = (frame, empty_frame(SUMMARY_COLUMNS)) if self.kind == "values" else (empty_frame(ROW_COLUMNS), frame)
         return Export(path=self.name, kind=self.kind, rows=rows, summaries=summaries,  # type: ignore[arg-type]
                       bad_rows=bad_rows, dropped=int(dropped.sum()), end_of_lot=markers,
@@ -226,6 +286,9 @@ class _Rows:
             empty = np.ones(cand.size, dtype=bool)
             for col in self.columns:
                 assert col is not None
+                if col.type == pa.float64():  # a number: not blank
+                    empty[:] = False
+                    break
                 empty &= pc.equal(pc.binary_length(convert.trim(col.take(take))), 0).to_numpy(zero_copy_only=False)
             blank[cand[empty]] = True
         return blank
@@ -244,32 +307,73 @@ class _Rows:
                                   " set decimal in a feed profile to make this explicit")
         return self._decimal_mark
 
-    def _number(self, canon: str, integer: bool = False) -> np.ndarray:
-        decimal = self._decimal(self.text(canon))
-        values, status = convert.parse_numbers(self.text(canon), decimal)
-        if integer:
-            ok = status == convert.OK
-            whole = ok & (np.where(ok, values, 0) >= 1) & (np.where(ok, values, 0) <= _MAX_N)
-            whole &= np.floor(np.where(whole, values, 0)) == np.where(whole, values, 0)
-            self.flag(~whole, canon, f"{canon} '{{v}}' is not a positive whole number — must be 1 to {_MAX_N}")
-            return np.where(whole, values, 0).astype(np.int64)
-        mark = "decimal comma" if decimal == "," else "decimal point"
-        self.flag(status == convert.NOT_NUMBER, canon,
-                  f"{canon} '{{v}}' is not a number — expected digits with a {mark}")
-        self.flag(status == convert.NOT_FINITE, canon, f"{canon} '{{v}}' is not finite — must be a finite number")
-        return values
+    def _parse(self, canon: str) -> tuple[np.ndarray, np.ndarray]:
+        """Float64 values (NaN where unusable) and the convert status of each row of a number column."""
+        col = self.columns[self.index[canon]]
+        if col is not None and col.type == pa.float64():  # the parser read every cell as a finite number
+            self._decimal_mark = self.prof.decimal
+            return col.to_numpy(), np.zeros(len(col), dtype=np.int8)  # convert.OK
+        return convert.parse_numbers(self.text(canon), self._decimal(self.text(canon)))
 
-    def _units(self) -> pa.ChunkedArray:
+    def _is_blank(self, canon: str, status: np.ndarray) -> np.ndarray:
+        """Rows whose (trimmed) cell of ``canon`` is empty: blank, as opposed to text that is not a number."""
+        cand = status == convert.NOT_NUMBER
+        if not cand.any():
+            return cand
+        return cand & pc.equal(pc.binary_length(self.text(canon)), 0).to_numpy(zero_copy_only=False)
+
+    def _flag_number(self, canon: str, status: np.ndarray, summary: bool = False) -> None:
+        """Flag blank, non-numeric and non-finite cells of a number column; the rows are kept (excluded)."""
+        if (status == convert.OK).all():
+            return
+        mark = "decimal comma" if self._decimal_mark == "," else "decimal point"
+        self.flag(self._is_blank(canon, status), canon, f"{canon} is blank — expected a number with a {mark}",
+                  PROBLEM if summary else BLANK)
+        self.flag(status == convert.NOT_NUMBER, canon,
+                  f"{canon} '{{v}}' is not a number — expected digits with a {mark}",
+                  PROBLEM if summary else NOT_A_NUMBER)
+        self.flag(status == convert.NOT_FINITE, canon, f"{canon} '{{v}}' is not finite — must be a finite number",
+                  PROBLEM if summary else NOT_FINITE)
+
+    def _summary_numbers(self, mean_status: np.ndarray) -> dict[str, np.ndarray]:
+        """n and sd of a summary export, and the flags of unusable n / mean / sd (such records are kept).
+
+        A record of n = 1 whose sd is blank or not finite is a record with a problem (not judged): one unit
+        has no spread, and judging a lot needs at least 2 units anyway.
+        """
+        n_raw, n_status = self._parse("n")
+        ok = n_status == convert.OK
+        whole = ok & (np.where(ok, n_raw, 0) >= 1) & (np.where(ok, n_raw, 0) <= _MAX_N)
+        whole &= np.floor(np.where(whole, n_raw, 0)) == np.where(whole, n_raw, 0)
+        n_val = np.where(whole, n_raw, 0).astype(np.int64)
+        sd_val, sd_status = self._parse("sd")
+        self._flag_number("mean", mean_status, summary=True)
+        self.flag(self._is_blank("n", n_status), "n", f"n is blank — must be a whole number 1 to {_MAX_N}",
+                  PROBLEM)
+        self.flag(~whole, "n", f"n '{{v}}' is not a positive whole number — must be 1 to {_MAX_N}", PROBLEM)
+        self.flag((n_val == 1) & (sd_status != convert.OK), "sd",
+                  "sd '{v}' is undefined for a lot of one unit (n = 1) — a summary is judged with n >= 2 "
+                  "and a finite sd >= 0", PROBLEM)
+        self._flag_number("sd", sd_status, summary=True)
+        self.flag(sd_val < 0, "sd", "sd '{v}' is negative — must be >= 0", PROBLEM)
+        return {"n": n_val, "sd": sd_val}
+
+    def _units(self, early: Future[tuple[pa.ChunkedArray, np.ndarray]] | None = None) -> pa.ChunkedArray:
+        """Canonical unit per row; "" where the value carries no unit (no unit cell, no profile unit)."""
         if "unit" not in self.index:
-            return repeat_text(self.prof.unit, self.n)
+            return repeat_text(self.prof.unit or "", self.n)
         # parse_units strips each distinct spelling itself: no need to trim a million cells first
-        units, unknown = convert.parse_units(self.columns[self.index["unit"]], self.prof.unit)  # type: ignore[arg-type]
+        units, unknown = early.result() if early is not None else convert.parse_units(
+            self.columns[self.index["unit"]], self.prof.unit or "")  # type: ignore[arg-type]
         self.flag(unknown, "unit", f"unknown unit '{{v}}' — allowed: {ALLOWED_UNITS}")
         return units
 
     def _subtract_tare(self, values: np.ndarray, units: pa.ChunkedArray) -> np.ndarray:
+        """Values less the tare: converted to each row's unit, or as it stands when no unit is declared."""
         if self.prof.tare == 0.0:
             return values
+        if self.prof.unit is None:  # the tare is in the values' own (unstated) unit
+            return values - self.prof.tare
         out = values.copy()
         units_np = units.to_numpy(zero_copy_only=False)
         for u in pc.unique(units).to_pylist():
@@ -281,12 +385,16 @@ class _Rows:
                                         "to be subtracted")
         return out
 
-    def _timestamps(self) -> pa.ChunkedArray:
+    def _timestamps(self, early: Future[tuple[pa.ChunkedArray, np.ndarray]] | None = None) -> pa.ChunkedArray:
         t = self.text("timestamp")
         if t is None:
             return repeat_text("", self.n)
         try:
-            stamps, bad = convert.parse_timestamps(t, self.prof.timestamp_format)
+            if self.iso and all(f.result() for f in self.iso):
+                stamps, bad = convert.iso_text(t)
+            else:
+                stamps, bad = early.result() if early is not None else convert.parse_timestamps(
+                    t, self.prof.timestamp_format)
         except ValueError as exc:
             raise ExportError(f"timestamp_format {self.prof.timestamp_format!r} cannot be used: {exc}",
                               path=self.name, line=self.header.line, key=f"profiles.{self.prof.name}.timestamp_format",
@@ -359,8 +467,9 @@ class _Rows:
         return tuple(out)
 
     def _frame(self, good: np.ndarray, values: np.ndarray, units: pa.ChunkedArray, stamps: pa.ChunkedArray,
-               extra: dict[str, np.ndarray]) -> pd.DataFrame:
-        """The good rows as the documented frame (ROW_COLUMNS or SUMMARY_COLUMNS), index 0..n-1.
+               extra: dict[str, np.ndarray], why: pd.api.extensions.ExtensionArray,
+               pool: ThreadPoolExecutor | None = None) -> pd.DataFrame:
+        """The kept rows (``good``) as the documented frame (ROW_COLUMNS or SUMMARY_COLUMNS), index 0..n-1.
 
         Text columns become pandas "str" arrays over the Arrow data already in hand (no copy when every row
         is good); each raw column is let go as soon as its frame column exists.
@@ -375,23 +484,49 @@ class _Rows:
 
         cols: dict[str, object] = {"source_line": self.lines if every else self.lines[good]}
         kept = ["lot", "product", "line", "head"]
+        if pool is not None:  # side by side on the worker threads (a few new offsets buffers at once)
+            arrays = [self.text(c) for c in kept] + [units, stamps]
+            cols.update(zip(kept + ["unit", "timestamp"], pool.map(text, arrays)))
+            del arrays
+            kept = []
+            self._release()
         while kept:
             canon = kept.pop(0)
             cols[canon] = text(self.text(canon))
             self._release(keep=tuple(kept))
-        cols["unit"] = text(units)
-        del units
-        cols["timestamp"] = text(stamps)
-        del stamps
+        if "unit" not in cols:
+            cols["unit"] = text(units)
+            cols["timestamp"] = text(stamps)
+        del units, stamps
         if self.kind == "values":
             cols["value"] = values if every else values[good]
-            order = ROW_COLUMNS
+            cols["excluded"] = why
+            order: tuple[str, ...] = ROW_COLUMNS
         else:
             cols["mean"] = values if every else values[good]
             cols["n"] = extra["n"] if every else extra["n"][good]
             cols["sd"] = extra["sd"] if every else extra["sd"][good]
+            cols["problem"] = why
             order = SUMMARY_COLUMNS
         return frame_of([cols[c] for c in order], order, int(good.sum()))
+
+    def _why(self, keep: np.ndarray) -> pd.api.extensions.ExtensionArray:
+        """The ``excluded`` (values) or ``problem`` (summaries) column of the kept rows: "" for a usable one."""
+        excl = self.excl[keep]
+        if not excl.any():
+            return str_array(repeat_text("", int(excl.size)))
+        if self.kind == "values":
+            return str_array(pa.array(np.array(EXCLUDED_TEXT, dtype=object)[excl], FRAME_TEXT))
+        text = np.full(excl.size, "", dtype=object)
+        idx = np.flatnonzero(keep)
+        for j in np.flatnonzero(excl):
+            i = int(idx[j])
+            if self.code[i] > 0:
+                text[j] = self._describe(i).reason.partition(" — ")[0]
+            else:  # a 'no measurement' value (drop_values) in the mean column
+                raw = self.text("mean")[i].as_py()  # type: ignore[index]
+                text[j] = f"mean '{_short(raw)}' is a 'no measurement' value (drop_values)"
+        return str_array(pa.array(text, FRAME_TEXT))
 
 
 def _short(text: str, limit: int = 80) -> str:

@@ -14,15 +14,17 @@ import pyarrow.csv as pacsv
 from monitor.errors import ExportError
 from monitor.ingest.text import Header
 
-# Raw text columns use 32-bit offsets: a parsed million-row table is a third smaller than with large_string.
-# Only the columns an Export keeps are cast to large_string (pandas' "str" storage; the data buffer is shared).
-TEXT = pa.string()
-FRAME_TEXT = pa.large_string()  # small bodies are split straight into this type: nothing to cast later
+# The parser writes text columns as large_string, pandas' "str" storage: the columns an Export keeps need no
+# cast (measured: parsing into large_string costs less than parsing into string and casting the kept ones).
+TEXT = pa.string()  # the type of text the reader builds itself (value sets, summaries' reasons)
+FRAME_TEXT = pa.large_string()
 _UNCLEAN = re.compile(rb"[^\x21-\x7e\n]")  # a byte that may be (part of) whitespace around a field
 # Bodies up to this size without any quote character are split in Python: pyarrow's CSV reader costs more
 # to set up (~0.4 ms) than such a file takes to split. Measured on a canonical export, the two cross near
 # 25 KiB (~500 rows). A row of another width sends the body to pyarrow.
 FAST_PATH_MAX_BYTES = 16 * 1024
+_AGAIN = (0, "")  # what _parse gives when the threaded parser stopped on a cell (parse again as text)
+_BLOCK_BYTES = 4 << 20  # the threaded parser's block: measured faster than 1 MiB blocks on a 50 MB export
 
 
 @dataclass(frozen=True)
@@ -49,12 +51,14 @@ class RawTable:
         return int(self.lines.shape[0])
 
 
-def split_body(buf: bytes, header: Header, name: str) -> RawTable:
+def split_body(buf: bytes, header: Header, name: str, numbers: tuple[int, ...] = ()) -> RawTable:
     """Parse ``buf[header.body_start:]`` into ``len(header.names)`` string columns.
 
     Rows of the header's width are kept as they are (blank ones too: the caller drops them). A line of
     whitespace is left out; a row with too few fields, or too many non-empty ones, becomes a RawProblem;
-    trailing empty extra fields are ignored.
+    trailing empty extra fields are ignored. The fields of ``numbers`` may come back as float64 columns:
+    when the threaded parser reads every one of their cells as a finite number (anything else, and they
+    are text like the rest).
     """
     width = len(header.names)
     names = [f"c{i}" for i in range(width)]
@@ -65,7 +69,19 @@ def split_body(buf: bytes, header: Header, name: str) -> RawTable:
     small = _split_small(body, width, header) if len(body) <= FAST_PATH_MAX_BYTES and not quoted else None
     if small is not None:
         return small
-    table, invalid = _parse(body, names, header, name)
+    # The clean path: Arrow's multi-threaded parser. Its record numbers give each row's line as long as every
+    # record has the header's width; a record of another width (which the threaded parser cannot number)
+    # sends the body to the single-threaded parser, which numbers the rows it cannot split.
+    typed = {names[i]: pa.float64() for i in numbers}
+    invalid: list[tuple[int, str]] = [_AGAIN]
+    if typed:
+        table, invalid = _parse(body, names, header, name, threads=True, quoted=quoted, typed=typed)
+        if not invalid and not all(pc.all(pc.is_finite(table.column(c))).as_py() is not False for c in typed):
+            invalid = [_AGAIN]  # "nan" or "inf" in a number column: its text is needed for the bad row
+    if invalid == [_AGAIN]:
+        table, invalid = _parse(body, names, header, name, threads=True, quoted=quoted)
+    if invalid:
+        table, invalid = _parse(body, names, header, name, threads=False, quoted=quoted)
     # Chunked columns as the parser made them: combining would copy every column once more.
     columns = [table.column(c) if table.num_rows else pa.chunked_array([], TEXT) for c in names]
     n_valid = table.num_rows
@@ -84,7 +100,7 @@ def split_body(buf: bytes, header: Header, name: str) -> RawTable:
         extra = np.zeros(total + 1, dtype=np.int64)
         if n_valid:
             extra[valid_rec] = np.sum([pc.count_substring(c, "\n").to_numpy(zero_copy_only=False)
-                                       for c in columns], axis=0)
+                                       for c in columns if c.type != pa.float64()], axis=0)
         for num, text in invalid:
             extra[num] = text.count("\n")
         if extra.any():
@@ -109,8 +125,8 @@ def split_body(buf: bytes, header: Header, name: str) -> RawTable:
         else:
             problems.append(RawProblem(line, text, f"too many fields: {len(fields)}, the header has {width}"))
     if recovered:
-        columns = [pa.chunked_array(col.chunks + [pa.array([f[i] for _, f in recovered], TEXT)],
-                                    TEXT) for i, col in enumerate(columns)]
+        columns = [pa.chunked_array(col.chunks + [pa.array([f[i] for _, f in recovered], col.type)],
+                                    col.type) for i, col in enumerate(columns)]
         lines = np.concatenate([lines, np.array([ln for ln, _ in recovered], dtype=np.int64)])
         order = pa.array(np.argsort(lines, kind="stable"))
         lines = lines[order.to_numpy()]
@@ -143,29 +159,34 @@ def _split_small(body: memoryview, width: int, header: Header) -> RawTable | Non
     return RawTable(columns, lines, (), False, clean)
 
 
-def _parse(body: memoryview, names: list[str], header: Header, name: str) -> tuple[pa.Table, list[tuple[int, str]]]:
+def _parse(body: memoryview, names: list[str], header: Header, name: str, *, threads: bool,
+           quoted: bool, typed: dict[str, pa.DataType] | None = None) -> tuple[pa.Table, list[tuple[int, str]]]:
     """pyarrow's CSV parser, every field as a string; rows of the wrong width are collected, not parsed.
 
-    Single-threaded: only then does pyarrow number the rows it hands to the invalid-row handler, and on
-    the shared 2-core machine it measured faster (and lighter) than the threaded reader.
+    Only single-threaded does pyarrow number the rows it hands to the invalid-row handler; threaded, the
+    first such row stops the parse (the caller then parses single-threaded). Without a quote character in
+    the body no field can span lines, so the parser need not look for line breaks inside fields.
     """
     invalid: list[tuple[int, str]] = []
 
     def on_invalid(row: pacsv.InvalidRow) -> str:
         invalid.append((row.number, row.text))
-        return "skip"
+        return "skip" if not threads else "error"
 
     try:
         table = pacsv.read_csv(
             pa.BufferReader(pa.py_buffer(body)),
-            read_options=pacsv.ReadOptions(column_names=names, use_threads=False),
+            read_options=pacsv.ReadOptions(column_names=names, use_threads=threads,
+                                           block_size=_BLOCK_BYTES if threads else 1 << 20),
             parse_options=pacsv.ParseOptions(delimiter=header.delimiter, quote_char='"', double_quote=True,
-                                             escape_char=False, newlines_in_values=True,
+                                             escape_char=False, newlines_in_values=quoted,
                                              ignore_empty_lines=False, invalid_row_handler=on_invalid),
-            convert_options=pacsv.ConvertOptions(column_types={c: TEXT for c in names},
+            convert_options=pacsv.ConvertOptions(column_types={c: FRAME_TEXT for c in names} | (typed or {}),
                                                  strings_can_be_null=False, quoted_strings_can_be_null=False,
                                                  null_values=[], check_utf8=False),
         )
     except (pa.ArrowException, ValueError) as exc:
+        if threads:  # a row of another width (it cannot number), a cell not a number, other trouble
+            return pa.table({c: pa.array([], FRAME_TEXT) for c in names}), [_AGAIN] if not invalid else invalid
         raise ExportError(f"cannot split the file into fields: {exc}", path=name, line=header.line + 1) from None
     return table, invalid

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import codecs
 import csv
+import re
 from dataclasses import dataclass
 
 from monitor.errors import ExportError
@@ -13,6 +14,14 @@ _UTF8_BOM = codecs.BOM_UTF8
 _UTF16_BOMS = (codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)
 _UTF32_BOMS = (codecs.BOM_UTF32_LE, codecs.BOM_UTF32_BE)
 _SNIFF_ORDER = (",", ";", "\t")
+# Control bytes that no text export holds (all of C0 but tab, line feed, vertical tab, form feed, return).
+_NOT_SPACE = re.compile(rb"[^ \t\n\r\x0b\x0c]")
+_CONTROL = re.compile(rb"[\x00-\x08\x0e-\x1f]")
+# Leading bytes of common non-text files, so the error can say what the file looks like.
+_SIGNATURES = ((b"PK\x03\x04", "a ZIP archive (a spreadsheet workbook is one)"), (b"\x1f\x8b", "gzip data"),
+               (b"%PDF", "a PDF document"), (b"\x89PNG", "a PNG image"), (b"\xff\xd8\xff", "a JPEG image"),
+               (b"\xd0\xcf\x11\xe0", "an OLE2 compound file (an old spreadsheet workbook is one)"),
+               (b"SQLite format 3\x00", "an SQLite database"))
 
 
 @dataclass(frozen=True)
@@ -28,9 +37,13 @@ class Header:
 def decode(data: bytes, profile: FeedProfile, name: str) -> bytes:
     """UTF-8 bytes of the export with BOM removed and every line ending turned into ``\\n``.
 
-    Raises ExportError naming the line of the first byte that does not decode.
+    Raises ExportError naming the line of the first byte that does not decode, "empty file" for a file of
+    nothing but whitespace (or a BOM), and "not a text file" (naming what was found) for binary data.
     """
     enc = profile.encoding
+    eight_bit = enc in ("auto", *FALLBACK_ENCODINGS, "utf-8") and not data.startswith((*_UTF16_BOMS, *_UTF32_BOMS))
+    if eight_bit:  # a NUL byte here is a NUL character in the text too: refused before decoding
+        _refuse_binary(data, name, strict=False)
     out: bytes | None = None  # set when the input already is the UTF-8 we want (no copy, no re-encode)
     if enc in ("auto", *FALLBACK_ENCODINGS, "utf-8"):
         if data.startswith(_UTF8_BOM):
@@ -48,6 +61,7 @@ def decode(data: bytes, profile: FeedProfile, name: str) -> bytes:
                 out = data
             except UnicodeDecodeError as exc:
                 if enc in ("auto", "utf-8"):
+                    _refuse_binary(data, name, strict=True)
                     raise _undecodable(exc, data, name, "utf-8", 0,
                                        'set encoding = "latin-1" or "cp1252" in the feed profile if the '
                                        "weigher writes 8-bit text") from None
@@ -58,16 +72,56 @@ def decode(data: bytes, profile: FeedProfile, name: str) -> bytes:
             text = text[1:]
     if out is None:
         out = text.encode("utf-8")
-    if b"\x00" in out:
+    if not eight_bit and b"\x00" in out:
         pos = out.index(b"\x00")
-        raise ExportError("contains NUL characters — not a text export in this encoding", path=name,
-                          line=_line_of_bytes(out, pos),
-                          hint='UTF-16 files need a BOM, or set encoding = "utf-16-le" in the feed profile')
+        raise ExportError(f"not a text file in encoding {enc}: it decodes to NUL characters (first on this line)",
+                          path=name, line=_line_of_bytes(out, pos),
+                          hint="check the encoding in the feed profile, or the file is not an export")
+    _refuse_empty(out, name, len(data))
     if b"\r" in out:
         out = out.replace(b"\r\n", b"\n")
         if b"\r" in out:  # old-style CR-only line ends
             out = out.replace(b"\r", b"\n")
     return out
+
+
+def _refuse_binary(data: bytes, name: str, *, strict: bool) -> None:
+    """Raise "not a text file" for data with NUL bytes (or, when ``strict``, any control byte no text holds).
+
+    ``strict`` is for data that already failed to decode as UTF-8: 8-bit text (Latin-1 ...) has no control
+    bytes, binary data nearly always has some.
+    """
+    pos = data.find(b"\x00")
+    if pos < 0 and strict:
+        hit = _CONTROL.search(data)
+        pos = hit.start() if hit else -1
+    if pos < 0:
+        return
+    what = next((f"; it looks like {kind}" for sig, kind in _SIGNATURES if data.startswith(sig)), "")
+    byte = "NUL byte" if data[pos] == 0 else f"control byte 0x{data[pos]:02x}"
+    utf16 = pos < 64 and _looks_utf16(data)
+    raise ExportError(f"not a text file: {byte} at offset {pos}{what}", path=name, line=_line_of_bytes(data, pos),
+                      hint='a UTF-16 export needs a BOM, or set encoding = "utf-16-le" in the feed profile'
+                      if utf16 else "the reader takes text exports (CSV); check what the weigher wrote here")
+
+
+def _looks_utf16(data: bytes) -> bool:
+    """True when the first bytes alternate text and NUL as UTF-16 text without a BOM does."""
+    head = data[:64]
+    if len(head) < 4:
+        return False
+    even, odd = head[0::2], head[1::2]
+    return even.count(0) == len(even) or odd.count(0) == len(odd)
+
+
+def _refuse_empty(buf: bytes, name: str, size: int) -> None:
+    """Raise "empty file" when the decoded text is nothing but whitespace (a BOM is already gone)."""
+    first = _NOT_SPACE.search(buf)  # stops at the first byte that is not ASCII whitespace: no copy
+    if first is not None and (buf[first.start()] < 0x80 or str(buf[first.start():], "utf-8").strip()):
+        return
+    what = "0 bytes" if size == 0 else "only a byte-order mark" if not buf else "only whitespace"
+    raise ExportError(f"empty file ({what})", path=name,
+                      hint="the file has no header and no rows; an export needs a header naming its columns")
 
 
 def find_header(buf: bytes, profile: FeedProfile, name: str) -> Header:

@@ -24,8 +24,9 @@ ALTERNATIVES = ("two-sided", "less", "greater")
 class LocationTest:
     """Result of a one-sample test of location against ``target``.
 
-    ``ci_low`` / ``ci_high`` bound the ``1 − alpha`` confidence interval of the mean (median for
-    Wilcoxon); None is the open end of a one-sided interval, or no interval. ``df`` is None for z.
+    ``estimate`` is the sample mean (t, z) or the pseudo-median (Wilcoxon signed-rank: the Hodges–Lehmann
+    estimate). ``ci_low`` / ``ci_high`` bound the ``1 − alpha`` confidence interval of the mean; None is the
+    open end of a one-sided interval, or no interval (Wilcoxon computes none). ``df`` is None for z.
     """
 
     test: str

@@ -3,8 +3,14 @@
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 
-__all__ = ["format_p", "format_quantity", "format_statistic", "quantity_decimals"]
+__all__ = ["EXCLUSION_WORDS", "format_excluded", "format_p", "format_quantity", "format_statistic", "plural",
+           "quantity_decimals"]
+
+# plain words for the reasons a row of a lot carries no usable value (monitor.lot.EXCLUSION_REASONS)
+EXCLUSION_WORDS = {"blank": "blank", "not_a_number": "not a number", "not_finite": "not finite",
+                   "dropped_value": "listed in drop_values"}
 
 
 def format_p(p: float, alpha: float) -> str:
@@ -70,3 +76,32 @@ def format_quantity(v: float, decimals: int, strip: bool = True) -> str:
     if strip and "." in text:
         text = text.rstrip("0").rstrip(".")
     return "0" if text in ("-0", "") else text
+
+
+def plural(count: int, word: str, many: str | None = None) -> str:
+    """``1 row`` / ``3 rows``: the count with the word in the right number.
+
+    Examples
+    --------
+    >>> plural(1, "row"), plural(3, "row"), plural(0, "unit"), plural(2, "value of", "values of")
+    ('1 row', '3 rows', '0 units', '2 values of')
+    """
+    return f"{count} {word if count == 1 else (many or word + 's')}"
+
+
+def format_excluded(counts: Mapping[str, int]) -> str:
+    """How many rows of a lot were left out for want of a usable value, and why, in plain words.
+
+    ``counts`` maps each reason (``EXCLUSION_WORDS`` keys; others are shown as given) to its count; the
+    reasons are listed in the mapping's order, zero counts left out.
+
+    Examples
+    --------
+    >>> format_excluded({"blank": 2, "not_a_number": 1, "not_finite": 0, "dropped_value": 0})
+    '3 rows without a usable value left out (2 blank, 1 not a number)'
+    >>> format_excluded({"blank": 0, "not_a_number": 0, "not_finite": 0, "dropped_value": 1})
+    '1 row without a usable value left out (1 listed in drop_values)'
+    """
+    total = sum(counts.values())
+    why = ", ".join(f"{k} {EXCLUSION_WORDS.get(r, r.replace('_', ' '))}" for r, k in counts.items() if k)
+    return f"{plural(total, 'row')} without a usable value left out" + (f" ({why})" if why else "")

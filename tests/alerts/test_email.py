@@ -49,7 +49,7 @@ def test_hold_notice_content_envelope_and_chart(db_path, tmp_path, put, alert_fa
     assert m["Bcc"] is None and m["Cc"] is None
     text = m.get_body(("plain",)).get_content()
     for needle in ("L2", "OAT-500", "A1001", "n = 10", "497.43", "500.00", "496.97", "497.89",
-                   "against alpha 0.05", "Student's t", "shapiro", "0.93", "oat-500", "3f2a9c1d",
+                   "against alpha 0.05", "Student's t", "Shapiro–Wilk", "0.93", "oat-500", "3f2a9c1d",
                    "exports/L2-A1001.csv", "competent authority"):
         assert needle in text, needle
     html = m.get_body(("html",)).get_content()

@@ -44,7 +44,7 @@ def test_alerts_within_window_go_in_one_message_with_each_chart(db_path, put, al
     assert len(srv.received) == 1
     m = srv.received[0].message
     assert lots_in(srv.received) == ["G0", "G1", "G2", "G3"]
-    assert "5 alerts" in m["Subject"] and "4 lot(s) to hold" in m["Subject"]
+    assert "5 alerts" in m["Subject"] and "4 lots to hold" in m["Subject"]
     assert "file-rejected" in m.get_body(("plain",)).get_content()
     assert len([p for p in m.walk() if p.get_content_type() == "image/png"]) == 4
 

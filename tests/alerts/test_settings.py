@@ -74,7 +74,8 @@ def test_header_breaking_recipient_is_refused():
 
 
 def test_routes_select_by_line_product_kind():
-    """Routes add recipients by line / product / kind; an alert no route selects goes to the defaults."""
+    """Routes add recipients to the defaults by line / product / kind; replace_default makes a route replace
+    them; an alert no route selects goes to the defaults."""
     s = parse(BASE + """
 [[alerts.email.route]]
 lines = ["L1"]
@@ -83,11 +84,47 @@ recipients = ["l1-qa@brackenfield.example"]
 products = ["JAM-*"]
 kinds = ["hold"]
 recipients = ["jam@brackenfield.example"]
+[[alerts.email.route]]
+lines = ["L3"]
+kinds = ["review"]
+recipients = ["l3-lead@brackenfield.example"]
+replace_default = true
 """)
-    assert s.email.recipients_for("hold", "L1", "OAT-500") == ("l1-qa@brackenfield.example",)
+    assert s.email.recipients_for("hold", "L1", "OAT-500") == ("l1-qa@brackenfield.example",
+                                                               "qa@brackenfield.example")
     assert s.email.recipients_for("hold", "L1", "JAM-340") == ("jam@brackenfield.example",
-                                                               "l1-qa@brackenfield.example")
-    assert s.email.recipients_for("review", "L3", "JAM-340") == ("qa@brackenfield.example",)
+                                                               "l1-qa@brackenfield.example",
+                                                               "qa@brackenfield.example")
+    assert s.email.recipients_for("review", "L2", "JAM-340") == ("qa@brackenfield.example",)
+    assert s.email.recipients_for("review", "L3", "JAM-340") == ("l3-lead@brackenfield.example",)
+    assert s.email.recipients_for("hold", "L3", "JAM-340") == ("jam@brackenfield.example",
+                                                               "qa@brackenfield.example")
+    # a verdict-changed alert is selected by the kind of the verdict it replaces
+    assert s.email.recipients_for("verdict-changed", "L3", "OAT-500", "review") == ("l3-lead@brackenfield.example",)
+    assert s.email.recipients_for("verdict-changed", "L3", "OAT-500", "hold") == ("qa@brackenfield.example",)
+    assert s.email.routes[2].replace_default is True and s.email.routes[0].replace_default is False
+
+
+@pytest.mark.parametrize("extra, key, needle", [
+    ('replace_default = "yes"\n', "alerts.email.route[0].replace_default", "true or false"),
+    ('replace_default = 1\n', "alerts.email.route[0].replace_default", "true or false"),
+    ('replace = true\n', "alerts.email.route[0].replace", "replace_default"),
+    ('kinds = ["verdict-chagned"]\n', "alerts.email.route[0].kinds", "verdict-changed"),
+])
+def test_bad_route_keys_name_file_and_key(extra, key, needle):
+    """A wrong route key or value is a ConfigError naming the file, the route's key and what is allowed."""
+    with pytest.raises(ConfigError) as err:
+        parse(BASE + '[[alerts.email.route]]\nrecipients = ["lead@brackenfield.example"]\n' + extra)
+    assert err.value.key == key and err.value.path == "lotwarden.toml"
+    assert needle in str(err.value)
+
+
+def test_verdict_changed_is_a_known_route_kind():
+    """A route may select the verdict-changed kind by name."""
+    s = parse(BASE + '[[alerts.email.route]]\nkinds = ["verdict-changed"]\nreplace_default = true\n'
+                     'recipients = ["lead@brackenfield.example"]\n')
+    assert s.email.recipients_for("verdict-changed", "L1", "X", "hold") == ("lead@brackenfield.example",)
+    assert s.email.recipients_for("hold", "L1", "X") == ("qa@brackenfield.example",)
 
 
 def test_command_and_digest_sections():

@@ -25,7 +25,7 @@ class Result:
 
 def lotwarden(*args: str, cwd: Path | None = None) -> Result:
     proc = subprocess.run([sys.executable, "-m", "monitor", *args], cwd=cwd or REPO, capture_output=True,
-                          text=True, timeout=120)
+                          text=True, timeout=120, check=False)
     return Result(proc)
 
 

@@ -32,7 +32,7 @@ def _rules() -> dict[str, dict]:
 
 def _independent_lots() -> dict[str, tuple[str, np.ndarray | tuple[int, float, float]]]:
     """lot -> (product, values in the rule's unit) read without lotwarden."""
-    lots: dict[str, tuple[str, object]] = {}
+    lots: dict[str, tuple[str, np.ndarray | tuple[int, float, float]]] = {}
     l1 = pd.concat([pd.read_csv(p, dtype={"lot": str}) for p in sorted(FEEDS.glob("L1-*.csv"))])
     for lot, g in l1.groupby("lot", sort=False):
         lots[lot] = ("OAT-500", g["value"].to_numpy())
@@ -101,7 +101,7 @@ def test_sample_feeds_story() -> None:
     assert got["OAT-24A102"]["verdict"] == "hold" and got["OAT-24A102"]["mean"] < 503
     assert got["J-5522"]["verdict"] == "hold" and got["J-5522"]["mean"] > 342
     heads = {h["head"]: h["offset"] for h in got["OAT-24A103"]["heads"]}
-    assert min(heads, key=heads.get) == "H4"
+    assert min(heads, key=lambda h: heads[h]) == "H4"
     assert got["OAT-24A104"]["verdict"] == "review"
     assert got["J-5523"]["verdict"] == "pass" and got["J-5523"]["power"] < 0.5
     assert got["J-5521"]["n"] == 38  # two "ERR" weighings dropped

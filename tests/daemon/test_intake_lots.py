@@ -259,7 +259,10 @@ def test_a_lot_closed_in_the_same_batch_is_judged_like_scipy(intake_env, monkeyp
     assert v.n == len(values)
     assert v.statistic == pytest.approx(ref.statistic, rel=1e-9)
     assert v.p_value == pytest.approx(ref.pvalue, rel=1e-9)
-    assert v.files == (str(f1), str(f2))
+    # issue 7 §3: a verdict names its files where they now lie (the archive), in arrival order
+    day = Path(cfg.state.archive) / "2026-11-30"   # the test clock's UTC date
+    assert v.files == (str(day / f1.name), str(day / f2.name))
+    assert all(Path(f).exists() for f in v.files) and not f1.exists() and not f2.exists()
     assert {h.head for h in v.heads} == {"H1", "H2", "H3", "H4"}  # written by write_export
 
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 import codecs
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from monitor.errors import ExportError
@@ -19,24 +20,34 @@ def one_bad(data: bytes, profile: FeedProfile = LENIENT):
     return exp, exp.bad_rows[0]
 
 
-@pytest.mark.parametrize("data, line, column, value, fragment", [
-    (b"lot,value\nA,1\nA,abc\n", 3, "value", "abc", "value 'abc' is not a number"),
-    (b"lot,value\nA,1\nA,1.2.3\n", 3, "value", "1.2.3", "is not a number"),
-    (b"lot,value\nA,1\nA,0x1F\n", 3, "value", "0x1F", "is not a number"),
-    (b"lot,value\nA,1\nA,\n", 3, "value", "", "is not a number"),
-    (b"lot,value\nA,1\nA,inf\n", 3, "value", "inf", "is not finite"),
-    (b"lot,value\nA,1\nA,-NaN\n", 3, "value", "-NaN", "is not finite"),
-    (b"lot,value\nA,1\nA,1e999\n", 3, "value", "1e999", "is not finite"),
-    (b"lot,value\nA,1\n  ,2\n", 3, "lot", "  ", "empty lot code"),
-    (b"lot,value,unit\nA,1,g\nA,2,lbs\n", 3, "unit", "lbs", "unknown unit 'lbs'"),
+@pytest.mark.parametrize("data, line, column, value, fragment, excluded", [
+    (b"lot,value\nA,1\nA,abc\n", 3, "value", "abc", "value 'abc' is not a number", "not_a_number"),
+    (b"lot,value\nA,1\nA,1.2.3\n", 3, "value", "1.2.3", "is not a number", "not_a_number"),
+    (b"lot,value\nA,1\nA,0x1F\n", 3, "value", "0x1F", "is not a number", "not_a_number"),
+    (b"lot,value\nA,1\nA,\n", 3, "value", "", "value is blank", "blank"),
+    (b"lot,value\nA,1\nA,inf\n", 3, "value", "inf", "is not finite", "not_finite"),
+    (b"lot,value\nA,1\nA,-NaN\n", 3, "value", "-NaN", "is not finite", "not_finite"),
+    (b"lot,value\nA,1\nA,1e999\n", 3, "value", "1e999", "is not finite", "not_finite"),
+    (b"lot,value\nA,1\n  ,2\n", 3, "lot", "  ", "empty lot code", None),
+    (b"lot,value,unit\nA,1,g\nA,2,lbs\n", 3, "unit", "lbs", "unknown unit 'lbs'", None),
 ])
 def test_bad_rows_name_line_column_raw_value_and_reason(data: bytes, line: int, column: str, value: str,
-                                                        fragment: str) -> None:
-    """Each bad row carries its physical line, the export's column, the raw text and the reason."""
+                                                        fragment: str, excluded: str | None) -> None:
+    """Each bad row carries its physical line, the export's column, the raw text and the reason.
+
+    Changed by issue 7 (every measurement accounted for): a row of a lot whose only problem is its value is
+    now kept in ``rows`` with value NaN and its reason in ``excluded`` (it is still a bad row); a blank value
+    says "blank", no longer "not a number". Rows with other problems stay out, as before.
+    """
     exp, bad = one_bad(data)
     assert (bad.line, bad.column, bad.value) == (line, column, value)
     assert fragment in bad.reason
-    assert len(exp.rows) == 1 and exp.rows["source_line"].tolist() == [2]
+    if excluded is None:
+        assert len(exp.rows) == 1 and exp.rows["source_line"].tolist() == [2]
+    else:
+        assert exp.rows["source_line"].tolist() == [2, 3]
+        assert exp.rows["excluded"].tolist() == ["", excluded]
+        assert exp.rows["value"].tolist()[0] == 1.0 and np.isnan(exp.rows["value"].tolist()[1])
 
 
 def test_allowed_forms_are_named_in_the_reason() -> None:
@@ -64,10 +75,15 @@ def test_wrong_field_count(row: bytes, fragment: str) -> None:
     (b"J2,5,abc,1", "mean", "mean 'abc' is not a number"),
 ])
 def test_bad_summary_rows(row: bytes, column: str, fragment: str) -> None:
-    """Summary rows need n a whole number >= 1, a numeric mean and sd >= 0."""
+    """Summary rows need n a whole number >= 1, a numeric mean and sd >= 0.
+
+    Changed by issue 7: such a record is no longer left out; it is kept in ``summaries`` with its reason
+    in ``problem`` (the bad row's reason up to its " — what is allowed" part) and still counts as bad.
+    """
     exp, bad = one_bad(b"lot,n,mean,sd\nJ1,20,341.2,1.5\n" + row + b"\n")
     assert (bad.line, bad.column) == (3, column) and fragment in bad.reason
-    assert exp.summaries["lot"].tolist() == ["J1"]
+    assert exp.summaries["lot"].tolist() == ["J1", "J2"]
+    assert exp.summaries["problem"].tolist() == ["", bad.reason.partition(" — ")[0]]
 
 
 def test_too_many_bad_rows_rejects_naming_first_bad_line_column_and_counts() -> None:
@@ -99,8 +115,7 @@ def test_budget_boundary_is_inclusive() -> None:
 @pytest.mark.parametrize("data, line, fragment", [
     (b"lot,value\n", 1, "no data rows after the header"),
     (b"lot,value\n\n\n", 1, "no data rows after the header"),
-    (b"", 1, "no header"),
-    (b"\n \n", 3, "no header"),
+    # b"" and b"\n \n" ("no header" before issue 7) now say "empty file": test_ingest_accounting.py
     (b"lot;weight\nA;1\n", 1, "the header needs columns 'lot', 'value'"),
     (b"lot,value,value\nA,1,2\n", 1, "column 'value' appears 2 times"),
     (b"lot,value\nA,abc\n", 2, "value 'abc' is not a number (column 'value'); 1 of 1 rows bad"),

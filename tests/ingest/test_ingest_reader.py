@@ -144,11 +144,17 @@ def test_tare_is_subtracted_in_each_rows_unit() -> None:
 
 
 def test_sentinels_are_dropped_and_counted_not_bad() -> None:
-    """drop_values rows are counted in `dropped`, not reported as bad, and leave no row."""
+    """drop_values rows are counted in `dropped`, not reported as bad, and kept as NaN marked "dropped_value".
+
+    Changed by issue 7: they used to leave no row; now every row of a lot is accounted for in ``rows``.
+    """
     prof = FeedProfile(drop_values=("-9999", "ERR"), max_bad_rows=0)
     exp = read_export_bytes(b"lot,value\nA,1\nA,-9999\nA, ERR \nA,2\n", name="s.csv", profile=prof)
-    assert values_of(exp) == [1.0, 2.0] and exp.dropped == 2 and exp.bad_rows == ()
-    assert exp.rows["source_line"].tolist() == [2, 5]
+    assert exp.dropped == 2 and exp.bad_rows == ()
+    assert exp.rows["source_line"].tolist() == [2, 3, 4, 5]
+    assert exp.rows["excluded"].tolist() == ["", "dropped_value", "dropped_value", ""]
+    got = values_of(exp)
+    assert [got[0], got[3]] == [1.0, 2.0] and np.isnan(got[1]) and np.isnan(got[2])
 
 
 def test_end_of_lot_markers_name_the_lot_they_close() -> None:
@@ -329,7 +335,8 @@ def test_line_numbers_and_values_across_parser_blocks() -> None:
     assert len(data) > 2_000_000            # pyarrow parses in 1 MB blocks by default
     prof = FeedProfile(skip_lines=1, drop_values=("-9999",), max_bad_rows=0.05, unit="mL")
     exp = read_export_bytes(data, name="l3.csv", profile=prof)
-    assert dict(zip(exp.rows["source_line"].tolist(), exp.rows["value"].tolist())) == good
+    usable = exp.rows[exp.rows["excluded"] == ""]  # issue 7: sentinel and text rows are kept, excluded
+    assert dict(zip(usable["source_line"].tolist(), usable["value"].tolist())) == good
     assert [b.line for b in exp.bad_rows] == bad
     assert exp.dropped == sum(1 for ln in lines if ln.endswith(";-9999;1"))
 

@@ -9,13 +9,13 @@ from monitor.stats.location import critical_value, t_test, t_test_arrays, z_test
 ALTS = ("two-sided", "less", "greater")
 
 # Source: NIST/SEMATECH e-Handbook of Statistical Methods §1.3.6.7.2, table of the t distribution
-# (REFERENCES.md §1): (upper-tail quantile level, df, printed value). Printed to 3 decimals -> abs 0.5e-3.
+# (upper-tail quantile level, df, printed value). Printed to 3 decimals -> abs 0.5e-3.
 NIST_T_TABLE = [(0.975, 1, 12.706), (0.975, 9, 2.262), (0.975, 15, 2.131), (0.975, 30, 2.042),
                 (0.95, 15, 1.753), (0.995, 9, 3.250), (0.995, 15, 2.947), (0.995, 30, 2.750),
                 (0.999, 1, 318.309)]
 
 # Source: Student (1908) sleep data as carried in R's datasets::sleep; published R output of the
-# paired t-test (R documentation example for `sleep`), REFERENCES.md §3.
+# paired t-test (R documentation example for `sleep`).
 SLEEP_1 = np.array([0.7, -1.6, -0.2, -1.2, -0.1, 3.4, 3.7, 0.8, 0.0, 2.0])
 SLEEP_2 = np.array([1.9, 0.8, 1.1, 0.1, -0.1, 4.4, 5.5, 1.6, 4.6, 3.4])
 
@@ -47,7 +47,7 @@ def test_sleep_example_published_r_output():
 
 
 def test_sleep_one_sided_computed_value():
-    """One-sided (H1: group 2 − group 1 > 0): p = 0.0014164450986921364 (REFERENCES §3, computed)."""
+    """One-sided (H1: group 2 − group 1 > 0): p = 0.0014164450986921364 (R t.test(extra ~ group, paired = TRUE, alternative = "greater"), as scipy computes it)."""
     d = SLEEP_2 - SLEEP_1
     r = t_test(d.size, d.mean(), d.std(ddof=1), 0.0, "greater")
     assert r.p_value == pytest.approx(0.0014164450986921364, rel=1e-10)

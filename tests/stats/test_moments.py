@@ -10,7 +10,7 @@ from monitor.stats.moments import compute_moments, segment_moments
 NIST = Path(__file__).resolve().parent.parent / "data" / "nist"
 
 # Source: NIST Statistical Reference Datasets, univariate summary statistics, certified values
-# (copied in /work/shared/REFERENCES.md §2). (name, certified mean, certified sd, sd rel. tolerance)
+# (https://www.itl.nist.gov/div898/strd/univ/, one page per dataset). (name, certified mean, certified sd, sd rel. tolerance)
 CERTIFIED = [
     ("PiDigits", 4.53480000000000, 2.86733906028871, 1e-13),
     ("Lottery", 518.958715596330, 291.699727470969, 1e-13),
@@ -19,7 +19,7 @@ CERTIFIED = [
     ("Michelso", 299.852400000000, 0.0790105478190518, 1e-11),
     ("NumAcc1", 10000002.0, 1.0, 1e-13),
     ("NumAcc2", 1.2, 0.1, 1e-12),
-    ("NumAcc3", 1000000.2, 0.1, 1e-8),    # parsing to float64 already moves the exact sd (REFERENCES §2)
+    ("NumAcc3", 1000000.2, 0.1, 1e-8),    # parsing to float64 already moves the exact sd (NIST StRD NumAcc3 certified values)
     ("NumAcc4", 10000000.2, 0.1, 1e-7),
 ]
 
@@ -37,12 +37,12 @@ def test_nist_certified_mean_and_sd(name, mean, sd, sd_rtol):
 
 
 def test_naive_formula_fails_numacc4_but_ours_does_not():
-    """The one-pass formula breaks on NumAcc4 (REFERENCES §2); the corrected two-pass result does not."""
+    """The one-pass formula breaks on NumAcc4 (NIST StRD NumAcc3 certified values); the corrected two-pass result does not."""
     x = _load("NumAcc4")
     n = x.shape[0]
     with np.errstate(invalid="ignore"):
         naive = np.sqrt((np.sum(x * x) - np.sum(x) ** 2 / n) / (n - 1))
-    assert not naive == pytest.approx(0.1, rel=1e-3)          # the check can tell good from bad
+    assert naive != pytest.approx(0.1, rel=1e-3)              # the check can tell good from bad
     assert compute_moments(x).sd == pytest.approx(0.1, rel=1e-7)
 
 
@@ -59,7 +59,7 @@ def test_segments_equal_single_lots():
 
 def test_degenerate_sizes():
     """n = 0 gives NaN mean; n = 1 gives NaN sd; constant values give sd exactly 0."""
-    n, mean, var = segment_moments(np.array([3.0, 5.0, 5.0, 5.0]), np.array([0, 1, 3]))
+    _, mean, var = segment_moments(np.array([3.0, 5.0, 5.0, 5.0]), np.array([0, 1, 3]))
     assert np.isnan(mean[0]) and np.isnan(var[0])
     assert mean[1] == 3.0 and np.isnan(var[1])
     assert mean[2] == 5.0 and var[2] == 0.0

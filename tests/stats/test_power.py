@@ -11,8 +11,7 @@ SM_ALT = {"two-sided": "two-sided", "greater": "larger", "less": "smaller"}
 
 
 @pytest.mark.parametrize("d,n,alpha,alternative,expected", [
-    # Source: R pwr::pwr.t.test values recorded in statsmodels/stats/tests/test_power.py (TestTTPowerOneS1-4),
-    # REFERENCES.md §5
+    # Source: R pwr::pwr.t.test values recorded in statsmodels/stats/tests/test_power.py (TestTTPowerOneS1-4)
     (0.2, 20, 0.05, "two-sided", 0.1359562887679666),
     (1.0, 30, 0.05, "two-sided", 0.9995636009612725),
     (1.0, 30, 0.05, "greater", 0.999892010204909),
