@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import mmap
+import os
+import stat
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
@@ -17,7 +20,7 @@ from monitor.ingest import convert
 from monitor.ingest.profile import CANONICAL_COLUMNS, DEFAULT_PROFILE, FeedProfile
 from monitor.ingest.frames import empty_frame, frame_of, repeat_text, str_array
 from monitor.ingest.table import FRAME_TEXT, TEXT, RawTable, split_body
-from monitor.ingest.text import Header, decode, find_header
+from monitor.ingest.text import Header, decode, decode_mapped, find_header
 from monitor.units import ALLOWED as ALLOWED_UNITS
 from monitor.units import conversion_factor
 
@@ -31,6 +34,10 @@ _GIVE_BACK_ROWS = 50_000
 # From this many rows the independent column work (units, timestamps, frame columns) runs on worker threads:
 # Arrow's compute functions let go of the GIL, so a large file's columns are converted side by side.
 PARALLEL_ROWS = 200_000
+# From this size a file is memory-mapped rather than read into bytes: no copy of its bytes, and the decode
+# checks look at the mapped pages in place. Smaller files are read (cheaper than setting up a map).
+MAP_MIN_BYTES = 1 << 20
+ISO_PARTS = 4  # a large file's ISO timestamp check in this many parts (two workers and the main thread)
 _POOL: list[ThreadPoolExecutor] = []
 
 
@@ -78,10 +85,22 @@ class Export:
 def read_export(path: str | Path, profile: FeedProfile | None = None) -> Export:
     """Read an export file; raises ExportError (path, line, column, what is allowed) when it is unusable."""
     try:
-        data = [Path(path).read_bytes()]
+        data: list[bytes | mmap.mmap] = [_load(Path(path))]
     except OSError as exc:
         raise ExportError(f"cannot read the file: {exc.strerror or exc}", path=str(path)) from None
     return _read(data, str(path), profile)
+
+
+def _load(path: Path) -> bytes | mmap.mmap:
+    """The file's bytes: a read-only memory map for a large regular file, else read into memory."""
+    with path.open("rb") as f:
+        st = os.fstat(f.fileno())
+        if stat.S_ISREG(st.st_mode) and st.st_size >= MAP_MIN_BYTES:
+            try:
+                return mmap.mmap(f.fileno(), 0, access=mmap.ACCESS_READ)
+            except (OSError, ValueError):  # a file system without mapping: read it instead
+                pass
+        return f.read()
 
 
 def read_export_bytes(data: bytes, *, name: str, profile: FeedProfile | None = None) -> Export:
@@ -89,12 +108,14 @@ def read_export_bytes(data: bytes, *, name: str, profile: FeedProfile | None = N
     return _read([data], name, profile)
 
 
-def _read(holder: list[bytes], name: str, profile: FeedProfile | None) -> Export:
+def _read(holder: list[bytes | mmap.mmap], name: str, profile: FeedProfile | None) -> Export:
     """Read the bytes in ``holder``, which it empties: once split, the file's bytes are let go (when no
     caller holds them too), so a large file and its parsed columns are not both kept while the frame is built.
     """
     prof = profile or DEFAULT_PROFILE
-    buf = decode(holder.pop(), prof, name)
+    data = holder.pop()
+    buf = decode_mapped(data, prof, name, _pool()) if isinstance(data, mmap.mmap) else decode(data, prof, name)
+    del data
     header = find_header(buf, prof, name)
     index, kind = _resolve_columns(header, prof, name)
     # The value column may be parsed straight into numbers (threaded, in the parser) when no cell of it needs
@@ -168,7 +189,8 @@ class _Rows:
         self.n = raw.size
         self.code = np.zeros(self.n, dtype=np.int16)      # 0 = good; else 1 + index into self.reasons
         self.excl = np.zeros(self.n, dtype=np.int8)       # > 0: kept without a usable value (BLANK ... PROBLEM)
-        self.iso: list[Future[bool]] = []                 # a large file's ISO timestamp check, run in parts
+        self.flagged = True                               # False once build found no row flagged at all
+        self.iso: list[tuple[pa.ChunkedArray, Future[bool]]] = []  # a large file's ISO check, in parts
         self.reasons: list[tuple[str, str, pa.ChunkedArray]] = []  # (canonical column, reason template, raw text)
         self.trimmed: dict[str, pa.ChunkedArray] = {}
         # A line holding only the end-of-lot text (no delimiters) is a marker, not a row with too few fields.
@@ -205,16 +227,19 @@ class _Rows:
     def build(self) -> Export:
         prof = self.prof
         pool = _pool() if self.n >= PARALLEL_ROWS else None
-        stamp_text = self.text("timestamp")
         early: dict[str, Future[tuple[pa.ChunkedArray, np.ndarray]]] = {}
-        if pool is not None:  # pure conversions, started now; their rows are flagged below, in order
-            if stamp_text is not None and prof.timestamp_format is None:  # the usual ISO column: two halves
-                self.iso = [pool.submit(convert.all_iso, part) for part in convert.iso_parts(stamp_text, 2)]
-            elif stamp_text is not None:
+        # Pure conversions, started now (the units first: they are wanted first); their rows are flagged
+        # below, in order. The ISO check runs in parts that the main thread takes over when it gets to them
+        # before a worker has (see _timestamps), so no thread waits while work is queued.
+        if pool is not None and "unit" in self.index:
+            early["unit"] = pool.submit(convert.parse_units, self.columns[self.index["unit"]], prof.unit or "")
+        stamp_text = self.text("timestamp")
+        if pool is not None and stamp_text is not None:
+            if prof.timestamp_format is None:  # the usual ISO column
+                self.iso = [(part, pool.submit(convert.all_iso, part))
+                            for part in convert.iso_parts(stamp_text, ISO_PARTS)]
+            else:
                 early["timestamp"] = pool.submit(convert.parse_timestamps, stamp_text, prof.timestamp_format)
-            if "unit" in self.index:
-                early["unit"] = pool.submit(convert.parse_units, self.columns[self.index["unit"]],
-                                            prof.unit or "")
         lot = self.text("lot")
         marker = np.zeros(self.n, dtype=bool)
         if prof.end_of_lot is not None:
@@ -242,29 +267,49 @@ class _Rows:
             self._flag_number(main, status)
         else:
             extra = self._summary_numbers(status)
+        # The usual large file has no row flagged at all (no marker, blank, dropped or bad row): its counts
+        # are known without a pass over the row codes each (excl > 0 only where a row is flagged).
+        self.flagged = bool(self.code.any())
+        if not self.flagged:
+            self._check_budget(len(self.problems), self.n + len(self.problems), self.n, 0)
+            bad_rows, markers = self._bad_rows(), self._markers(marker)
+            del lot
+            why = str_array(repeat_text("", self.n))
+            self._release(keep=("lot", "product", "line", "head"))
+            return self._export(self._frame(np.ones(self.n, dtype=bool), values, units, stamps, extra, why, pool),
+                                bad_rows, 0, markers)
         dropped = self.code == -2
         self.excl[dropped] = DROPPED
         keep = (self.code == 0) | (self.excl > 0)
         values = np.where(dropped, np.nan, values) if dropped.any() else values
         good = int((self.code == 0).sum())
         bad_count = int((self.code > 0).sum()) + len(self.problems)
+        # A row kept with its lot is listed in bad_rows and counted in its lot's `excluded_by`. A missed
+        # measurement (blank or non-finite value) or an unusable summary record loses nothing, so it does not
+        # use up the bad-row budget, which is for rows left out of every lot and for damage: text where a
+        # number belongs (not_a_number) still counts, as a sign of a damaged or misread export. A summary
+        # record kept this way is reported (a `review` lot naming its problem), so a file of such records is
+        # not "without usable rows"; a values file is when no row has a usable value.
+        free = (self.excl == BLANK) | (self.excl == NOT_FINITE) | (self.excl == PROBLEM)
+        kept_bad = int(((self.code > 0) & free).sum())
         if self.kind == "summary":
-            # An unusable summary record is still reported (a `review` lot naming its problem) and listed in
-            # bad_rows, but it costs no measurement: it neither uses up the bad-row budget nor leaves a file
-            # of such records "without usable rows".
-            reported = int(((self.code > 0) & (self.excl > 0)).sum())
-            bad_count, good = bad_count - reported, good + reported
+            good += kept_bad
         data_rows = int((self.code >= 0).sum() + dropped.sum()) + len(self.problems)
-        self._check_budget(bad_count, data_rows, good, int(dropped.sum()))
+        self._check_budget(bad_count, data_rows, good, int(dropped.sum()), kept=kept_bad)
         bad_rows, markers = self._bad_rows(), self._markers(marker)
         del lot
         why = self._why(keep)  # before the raw columns are let go: a summary's problem names its raw text
         self._release(keep=("lot", "product", "line", "head"))
         frame = self._frame(keep, values, units, stamps, extra, why, pool)
+        return self._export(frame, bad_rows, int(dropped.sum()), markers)
+
+    def _export(self, frame: pd.DataFrame, bad_rows: tuple[BadRow, ...], dropped: int,
+                markers: tuple[tuple[int, str], ...]) -> Export:
+        """The Export of this file around its frame (rows or summaries, by kind)."""
         rows, summaries = (frame, empty_frame(SUMMARY_COLUMNS)) if self.kind == "values" else (empty_frame(ROW_COLUMNS), frame)
         return Export(path=self.name, kind=self.kind, rows=rows, summaries=summaries,  # type: ignore[arg-type]
-                      bad_rows=bad_rows, dropped=int(dropped.sum()), end_of_lot=markers,
-                      density=prof.density, profile=prof.name, notes=tuple(self.notes))
+                      bad_rows=bad_rows, dropped=dropped, end_of_lot=markers,
+                      density=self.prof.density, profile=self.prof.name, notes=tuple(self.notes))
 
     def _release(self, keep: tuple[str, ...] = ()) -> None:
         """Let go of every raw column except those of ``keep`` (a large file's text need not outlive its use)."""
@@ -390,7 +435,7 @@ class _Rows:
         if t is None:
             return repeat_text("", self.n)
         try:
-            if self.iso and all(f.result() for f in self.iso):
+            if self.iso and all(convert.all_iso(part) if f.cancel() else f.result() for part, f in self.iso):
                 stamps, bad = convert.iso_text(t)
             else:
                 stamps, bad = early.result() if early is not None else convert.parse_timestamps(
@@ -415,12 +460,14 @@ class _Rows:
         return stamps
 
     # -- results ----------------------------------------------------------------------------------
-    def _check_budget(self, bad: int, data_rows: int, good: int, dropped: int) -> None:
+    def _check_budget(self, bad: int, data_rows: int, good: int, dropped: int, kept: int = 0) -> None:
+        """``bad`` rows in all, ``kept`` of them kept with their lot at no cost to the budget."""
         allowed = self.prof.allowed_bad_rows(data_rows)
         line, what, how = self._first_bad()
         fix = f"fix the export, or raise max_bad_rows in profile {self.prof.name!r}"
-        if bad > allowed:
-            raise ExportError(f"{what}; {bad} of {data_rows} rows bad, the profile allows {allowed}",
+        if bad - kept > allowed:
+            line, what, how = self._first_bad(left_out=True)
+            raise ExportError(f"{what}; {bad - kept} of {data_rows} rows bad, the profile allows {allowed}",
                               path=self.name, line=line, hint=f"{how}; {fix}" if how else fix)
         if good == 0:
             if bad:
@@ -431,10 +478,15 @@ class _Rows:
                                   path=self.name, line=self.header.line)
             raise ExportError("no data rows after the header", path=self.name, line=self.header.line)
 
-    def _first_bad(self) -> tuple[int, str, str]:
-        """Line, "what is wrong (column 'X')" and "what is allowed" of the first bad row."""
+    def _first_bad(self, left_out: bool = False) -> tuple[int, str, str]:
+        """Line, "what is wrong (column 'X')" and "what is allowed" of the first bad row (``left_out``: of
+        the first row that counts against the bad-row budget)."""
         cands: list[tuple[int, str, str]] = [(p.line, p.reason, "") for p in self.problems]
-        hit = np.flatnonzero(self.code > 0)
+        if self.flagged:
+            free = (self.excl == BLANK) | (self.excl == NOT_FINITE) | (self.excl == PROBLEM)
+            hit = np.flatnonzero((self.code > 0) & ~free if left_out else self.code > 0)
+        else:
+            hit = np.zeros(0, dtype=np.int64)
         if hit.size:
             row = self._describe(int(hit[0]))
             what, _, how = row.reason.partition(" — ")
@@ -448,7 +500,7 @@ class _Rows:
                       template.replace("{v}", _short(value.strip())))
 
     def _bad_rows(self) -> tuple[BadRow, ...]:
-        found = [self._describe(int(i)) for i in np.flatnonzero(self.code > 0)]
+        found = [self._describe(int(i)) for i in np.flatnonzero(self.code > 0)] if self.flagged else []
         found += [BadRow(p.line, None, _short(p.text), p.reason) for p in self.problems]
         return tuple(sorted(found, key=lambda b: b.line))
 

@@ -12,7 +12,7 @@ import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 
 from monitor.errors import ExportError
-from monitor.ingest.text import Header
+from monitor.ingest.text import Header, Text
 
 # The parser writes text columns as large_string, pandas' "str" storage: the columns an Export keeps need no
 # cast (measured: parsing into large_string costs less than parsing into string and casting the kept ones).
@@ -51,7 +51,7 @@ class RawTable:
         return int(self.lines.shape[0])
 
 
-def split_body(buf: bytes, header: Header, name: str, numbers: tuple[int, ...] = ()) -> RawTable:
+def split_body(buf: Text, header: Header, name: str, numbers: tuple[int, ...] = ()) -> RawTable:
     """Parse ``buf[header.body_start:]`` into ``len(header.names)`` string columns.
 
     Rows of the header's width are kept as they are (blank ones too: the caller drops them). A line of

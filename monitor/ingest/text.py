@@ -4,12 +4,17 @@ from __future__ import annotations
 
 import codecs
 import csv
+import mmap
 import re
+from concurrent.futures import Executor
 from dataclasses import dataclass
+
+import numpy as np
 
 from monitor.errors import ExportError
 from monitor.ingest.profile import FALLBACK_ENCODINGS, FeedProfile
 
+Text = bytes | mmap.mmap  # decoded export text: bytes, or the memory map of a file that needed no decoding
 _UTF8_BOM = codecs.BOM_UTF8
 _UTF16_BOMS = (codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)
 _UTF32_BOMS = (codecs.BOM_UTF32_LE, codecs.BOM_UTF32_BE)
@@ -32,6 +37,26 @@ class Header:
     names: tuple[str, ...]
     delimiter: str
     body_start: int
+
+
+def decode_mapped(data: mmap.mmap, profile: FeedProfile, name: str, pool: Executor | None = None) -> Text:
+    """What ``decode`` gives for a memory-mapped file: the map itself when that is the text already.
+
+    A file of ASCII bytes without NUL or carriage return (the usual export) in an 8-bit or UTF-8 encoding
+    is its own decoded text (no byte-order mark can be ASCII), so it is checked in place and not copied;
+    any other file is copied to bytes and decoded as ``decode`` does. ``pool`` runs part of the check.
+    """
+    if profile.encoding in ("auto", *FALLBACK_ENCODINGS, "utf-8") and len(data):
+        view = np.frombuffer(data, dtype=np.uint8)
+        # the largest byte on a worker thread (numpy lets go of the GIL) while this one looks for NUL and CR
+        top = pool.submit(np.max, view) if pool is not None else None
+        plain = data.find(b"\x00") < 0 and data.find(b"\r") < 0
+        ascii_only = int(top.result() if top is not None else view.max()) < 0x80
+        del view, top  # the map cannot be closed while an array looks at it
+        if plain and ascii_only:
+            _refuse_empty(data, name, len(data))
+            return data
+    return decode(data[:], profile, name)
 
 
 def decode(data: bytes, profile: FeedProfile, name: str) -> bytes:
@@ -114,7 +139,7 @@ def _looks_utf16(data: bytes) -> bool:
     return even.count(0) == len(even) or odd.count(0) == len(odd)
 
 
-def _refuse_empty(buf: bytes, name: str, size: int) -> None:
+def _refuse_empty(buf: Text, name: str, size: int) -> None:
     """Raise "empty file" when the decoded text is nothing but whitespace (a BOM is already gone)."""
     first = _NOT_SPACE.search(buf)  # stops at the first byte that is not ASCII whitespace: no copy
     if first is not None and (buf[first.start()] < 0x80 or str(buf[first.start():], "utf-8").strip()):
@@ -124,7 +149,7 @@ def _refuse_empty(buf: bytes, name: str, size: int) -> None:
                       hint="the file has no header and no rows; an export needs a header naming its columns")
 
 
-def find_header(buf: bytes, profile: FeedProfile, name: str) -> Header:
+def find_header(buf: Text, profile: FeedProfile, name: str) -> Header:
     """Locate the header line (after ``skip_lines``, first non-blank or first starting ``header_prefix``)."""
     pos, line = 0, 1
     for _ in range(profile.skip_lines):

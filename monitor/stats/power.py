@@ -123,7 +123,7 @@ def n_for_power(shift: float | np.ndarray, sd: float | np.ndarray, alpha: float,
     # Bracket around the normal-theory size ((z_a + z_power)·σ/δ)², which Student's t exceeds by about
     # z_a²/2; widen (halve / double) where the guess misses, then bisect the bracket.
     a = alpha if alternative != "two-sided" else alpha / 2.0
-    za, zp = float(special.ndtri(1.0 - a)), float(special.ndtri(target_power))
+    za, zp = -float(special.ndtri(a)), float(special.ndtri(target_power))
     with np.errstate(all="ignore"):
         guess = np.minimum(((za + zp) * d / s) ** 2, float(MAX_PLAN_N))
     # Fast path: one vectorised power call on a window of sizes around the corrected guess settles most

@@ -100,16 +100,25 @@ def test_rows_without_a_usable_value_are_kept_with_their_reason() -> None:
     assert exp.end_of_lot == ((15, "A"),)
 
 
-def test_excluded_rows_count_against_the_bad_row_budget() -> None:
-    """A blank value is a bad row for max_bad_rows: 1 of 20 is fine with 1 allowed, 2 are not."""
+def test_missed_measurements_do_not_use_up_the_bad_row_budget() -> None:
+    """Blank and non-finite values (missed measurements) are listed as bad rows and kept with their lot but
+    do not count against max_bad_rows; text where a number belongs (damage) and rows left out of every lot
+    (empty lot code) do: with 1 allowed, 4 missed measurements pass, 2 damaged values reject the file."""
     good = [f"A,{500 + i}" for i in range(18)]
-    ok = read_export_bytes(("lot,value\n" + "\n".join(good + ["A,", "A,1"]) + "\n").encode(), name="b.csv",
-                           profile=FeedProfile(max_bad_rows=1))
-    assert ok.rows["excluded"].tolist().count("blank") == 1
+    kept = read_export_bytes(("lot,value\n" + "\n".join(good + ["A,", "A, ", "A,x", "A,nan", "A,inf"]) + "\n"
+                              ).encode(), name="b.csv", profile=FeedProfile(max_bad_rows=1))
+    assert kept.rows["excluded"].tolist().count("") == 18
+    assert sorted(kept.rows["excluded"].tolist())[-5:] == ["blank", "blank", "not_a_number", "not_finite",
+                                                           "not_finite"]
+    assert len(kept.bad_rows) == 5
     with pytest.raises(ExportError, match="2 of 20 rows bad, the profile allows 1") as info:
-        read_export_bytes(("lot,value\n" + "\n".join(good + ["A,", "A, "]) + "\n").encode(), name="b.csv",
+        read_export_bytes(("lot,value\n" + "\n".join(good + ["A,x", "A,y"]) + "\n").encode(), name="b.csv",
                           profile=FeedProfile(max_bad_rows=1))
-    assert info.value.line == 20 and "value is blank" in str(info.value)
+    assert info.value.line == 20 and "not a number" in str(info.value)
+    with pytest.raises(ExportError, match="2 of 21 rows bad, the profile allows 1") as info:
+        read_export_bytes(("lot,value\n" + "\n".join(good + ["A,", ",501", ",502"]) + "\n").encode(),
+                          name="b.csv", profile=FeedProfile(max_bad_rows=1))
+    assert info.value.line == 21 and "empty lot code" in str(info.value)
 
 
 def test_no_usable_value_still_rejects_the_file() -> None:
