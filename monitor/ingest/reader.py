@@ -2,9 +2,6 @@
 
 from __future__ import annotations
 
-import mmap
-import os
-import stat
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
@@ -34,8 +31,7 @@ _GIVE_BACK_ROWS = 50_000
 # From this many rows the independent column work (units, timestamps, frame columns) runs on worker threads:
 # Arrow's compute functions let go of the GIL, so a large file's columns are converted side by side.
 PARALLEL_ROWS = 200_000
-# From this size a file is memory-mapped rather than read into bytes: no copy of its bytes, and the decode
-# checks look at the mapped pages in place. Smaller files are read (cheaper than setting up a map).
+# From this size the decode checks run in place, part of them on a worker thread (text.decode_mapped).
 MAP_MIN_BYTES = 1 << 20
 ISO_PARTS = 4  # a large file's ISO timestamp check in this many parts (two workers and the main thread)
 _POOL: list[ThreadPoolExecutor] = []
@@ -85,21 +81,16 @@ class Export:
 def read_export(path: str | Path, profile: FeedProfile | None = None) -> Export:
     """Read an export file; raises ExportError (path, line, column, what is allowed) when it is unusable."""
     try:
-        data: list[bytes | mmap.mmap] = [_load(Path(path))]
+        data: list[bytes] = [_load(Path(path))]
     except OSError as exc:
         raise ExportError(f"cannot read the file: {exc.strerror or exc}", path=str(path)) from None
     return _read(data, str(path), profile)
 
 
-def _load(path: Path) -> bytes | mmap.mmap:
-    """The file's bytes: a read-only memory map for a large regular file, else read into memory."""
+def _load(path: Path) -> bytes:
+    """The file's bytes, read into memory (not memory-mapped: a map of a file that another program truncates
+    while it is read kills the process with SIGBUS)."""
     with path.open("rb") as f:
-        st = os.fstat(f.fileno())
-        if stat.S_ISREG(st.st_mode) and st.st_size >= MAP_MIN_BYTES:
-            try:
-                return mmap.mmap(f.fileno(), 0, access=mmap.ACCESS_READ)
-            except (OSError, ValueError):  # a file system without mapping: read it instead
-                pass
         return f.read()
 
 
@@ -108,13 +99,14 @@ def read_export_bytes(data: bytes, *, name: str, profile: FeedProfile | None = N
     return _read([data], name, profile)
 
 
-def _read(holder: list[bytes | mmap.mmap], name: str, profile: FeedProfile | None) -> Export:
+def _read(holder: list[bytes], name: str, profile: FeedProfile | None) -> Export:
     """Read the bytes in ``holder``, which it empties: once split, the file's bytes are let go (when no
     caller holds them too), so a large file and its parsed columns are not both kept while the frame is built.
     """
     prof = profile or DEFAULT_PROFILE
     data = holder.pop()
-    buf = decode_mapped(data, prof, name, _pool()) if isinstance(data, mmap.mmap) else decode(data, prof, name)
+    buf = (decode_mapped(data, prof, name, _pool()) if len(data) >= MAP_MIN_BYTES
+           else decode(data, prof, name))
     del data
     header = find_header(buf, prof, name)
     index, kind = _resolve_columns(header, prof, name)

@@ -39,8 +39,9 @@ class Header:
     body_start: int
 
 
-def decode_mapped(data: mmap.mmap, profile: FeedProfile, name: str, pool: Executor | None = None) -> Text:
-    """What ``decode`` gives for a memory-mapped file: the map itself when that is the text already.
+def decode_mapped(data: bytes | mmap.mmap, profile: FeedProfile, name: str, pool: Executor | None = None
+                  ) -> Text:
+    """What ``decode`` gives for a large file: the bytes (or map) themselves when they are the text already.
 
     A file of ASCII bytes without NUL or carriage return (the usual export) in an 8-bit or UTF-8 encoding
     is its own decoded text (no byte-order mark can be ASCII), so it is checked in place and not copied;

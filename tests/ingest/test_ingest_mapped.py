@@ -1,4 +1,4 @@
-"""A large export file is memory-mapped: it reads as the same bytes do, errors naming the same lines."""
+"""A large export file (read with the in-place decode checks) reads as the same bytes do, errors naming the same lines."""
 
 from __future__ import annotations
 
