@@ -63,27 +63,34 @@ def _parse(iso: str) -> datetime | None:
 
 def summarise(conn: sqlite3.Connection, start: datetime, end: datetime, zone: ZoneInfo) -> dict[str, Any]:
     """The digest's data for decisions in [start, end): per line and product, the latest verdict per lot."""
-    latest: dict[tuple[str, str, str], tuple[datetime, str, float | None, float | None, str]] = {}
+    latest: dict[tuple[str, str, str], tuple[datetime, str, float | None, float | None, str, str | None]] = {}
     notes: list[str] = []
     lo = _utc(start - timedelta(days=1))                 # loose string bound; exact filter below
     try:
-        rows = conn.execute("SELECT decided_at, line, product, lot, verdict, mean, target, unit FROM verdicts"
-                            " WHERE decided_at >= ?", (lo,)).fetchall()
+        # the average-quantity screen's outcome: "met" / "not met" / "undecided", NULL when the rule has none
+        rows = conn.execute("SELECT decided_at, line, product, lot, verdict, mean, target, unit, CASE"
+                            " WHEN json_type(payload, '$.average_quantity') IS NOT 'object' THEN NULL"
+                            " WHEN json_extract(payload, '$.average_quantity.passed') = 1 THEN 'met'"
+                            " WHEN json_extract(payload, '$.average_quantity.passed') = 0 THEN 'not met'"
+                            " ELSE 'undecided' END FROM verdicts WHERE decided_at >= ?", (lo,)).fetchall()
     except sqlite3.Error as exc:
         rows = []
         notes.append(f"verdicts not readable: {exc}")
-    for decided_at, line, product, lot, verdict, mean, target, unit in rows:
+    for decided_at, line, product, lot, verdict, mean, target, unit, screen in rows:
         t = _parse(decided_at)
         if t is None or not start <= t < end:
             continue
         key = (line or "", product or "", lot or "")
         if key not in latest or latest[key][0] <= t:
-            latest[key] = (t, verdict, mean, target, unit or "")
+            latest[key] = (t, verdict, mean, target, unit or "", screen)
     lines: dict[str, dict[tuple[str, str], dict[str, Any]]] = {}
-    for (line, product, _lot), (_t, verdict, mean, target, unit) in sorted(latest.items()):
+    for (line, product, _lot), (_t, verdict, mean, target, unit, screen) in sorted(latest.items()):
         p = lines.setdefault(line, {}).setdefault((product, unit), {
-            "product": product, "unit": unit, "lots": 0, "passed": 0, "held": 0, "reviewed": 0, "_offsets": []})
+            "product": product, "unit": unit, "lots": 0, "passed": 0, "held": 0, "reviewed": 0, "_offsets": [],
+            "screen": {"met": 0, "not met": 0, "undecided": 0}})
         p["lots"] += 1
+        if screen is not None:
+            p["screen"][screen] += 1
         p[{"pass": "passed", "hold": "held", "review": "reviewed"}.get(verdict, "reviewed")] += 1
         if isinstance(mean, (int, float)) and isinstance(target, (int, float)) and math.isfinite(mean - target):
             p["_offsets"].append(mean - target)

@@ -102,7 +102,8 @@ SAMPLE_DIGEST = {"period_start": "2026-11-30T05:00:00+00:00", "period_end": "202
                  "period_start_local": "2026-11-30 06:00", "period_end_local": "2026-12-01 06:00",
                  "timezone": "Europe/Berlin",
                  "lines": [{"line": "L1", "products": [{"product": "JAM-340", "unit": "g", "lots": 3, "passed": 2,
-                                                        "held": 1, "reviewed": 0, "mean_offset": 0.4}]}],
+                                                        "held": 1, "reviewed": 0, "mean_offset": 0.4,
+                                                        "screen": {"met": 2, "not met": 1, "undecided": 0}}]}],
                  "files": {"done": 3, "rejected": 1, "duplicate": 0},
                  "rejected_files": [{"path": "exports/x.csv", "reason": "no lot column", "processed_at": ""}]}
 

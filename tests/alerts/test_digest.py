@@ -117,3 +117,37 @@ def test_schedule_adds_jobs_to_a_real_background_scheduler(db_path, tmp_path):
     finally:
         sched.shutdown(wait=True)
         d.close()
+
+
+def test_digest_counts_the_average_quantity_screen(db_path, tmp_path):
+    """The digest shows, per product, how many lots met, did not meet or could not decide the average-quantity
+    screen, from the verdicts' stored payloads (real engine verdicts of invented Brackenfield lots); lots of a
+    rule without a nominal are not counted. Full inspection: mean >= Qn, none below T2 = Qn - 2·TNE
+    (Council Directive 76/211/EEC Annex I; TNE 15 g for 500 g)."""
+    import numpy as np
+
+    from monitor.engine import evaluate
+    from monitor.lot import LotData, LotKey
+    from monitor.rulebook import Rule
+
+    seed_daemon_tables(db_path)
+    rule = Rule.from_toml({"name": "oat", "target": 503.0, "unit": "g", "nominal": 500.0}, source="t.toml")
+    plain = Rule.from_toml({"name": "oat", "target": 503.0, "unit": "g"}, source="t.toml")
+    met = np.linspace(501.0, 505.0, 40)
+    short = np.r_[met[:-1], 468.0]                             # one pack below T2 = 470 g
+    c = sqlite3.connect(db_path, isolation_level=None)
+    for lot, values, r in (("Q1", met, rule), ("Q2", short, rule), ("Q3", met, plain)):
+        v = evaluate(LotData(key=LotKey("L3", "OAT-500", lot), values=values, unit="g"), r)
+        c.execute("INSERT INTO verdicts VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
+                  ("2026-12-01T12:00:00+00:00", "L3", "OAT-500", lot, "oat", "v1", v.verdict, v.n, v.mean,
+                   503.0, "g", json.dumps(v.to_json())))
+    c.close()
+    d = Dispatcher(db_path, settings(tmp_path))
+    try:
+        assert d.run_digest(now=ts("2026-12-02T05:00:30+00:00"))
+        d.drain(now=ts("2026-12-02T05:00:31+00:00"))
+    finally:
+        d.close()
+    [dg] = digests(tmp_path)
+    [oat] = {ln["line"]: ln["products"] for ln in dg["data"]["lines"]}["L3"]
+    assert oat["lots"] == 3 and oat["screen"] == {"met": 1, "not met": 1, "undecided": 0}
