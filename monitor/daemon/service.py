@@ -22,6 +22,7 @@ from typing import Any, Callable, TextIO
 
 from monitor.alerts.alert import Alert
 from monitor.errors import LotwardenError
+from monitor.daemon.instance_lock import InstanceLock
 from monitor.daemon.logsetup import LogSetup, OneLineFormatter  # noqa: F401  (re-exported)
 from monitor.daemon.reload import (  # noqa: F401  (re-exported for callers of this module)
     Fingerprint, Reloading, ReloadStep, content_hash, decide_reload, take_fingerprint)
@@ -66,6 +67,7 @@ class Daemon(Reloading, SignalHandling):
         self._config: Any = None
         self._rules: list[Any] = []
         self._store: Any = None
+        self._lock: InstanceLock | None = None
         self._intake: Any = None
         self._dispatcher: Any = None
         self._scheduler: Any = None
@@ -168,6 +170,7 @@ class Daemon(Reloading, SignalHandling):
 
         for folder in (config.state.folder, config.state.archive, config.state.quarantine):
             Path(folder).mkdir(parents=True, exist_ok=True)
+        self._lock = InstanceLock.acquire(config.state.folder)   # a second daemon on this folder stops here
         self._store = Store.open(config.state.folder)
         self._intake = Intake(config, rules, self._store)
         recovered = self._intake.recover()
@@ -479,6 +482,9 @@ class Daemon(Reloading, SignalHandling):
                 except Exception:
                     log.exception("close failed")
         self._dispatcher = self._store = None
+        if self._lock is not None:
+            self._lock.release()
+            self._lock = None
 
 
 def _bounded(fn: Callable[[], Any], seconds: float, what: str) -> None:
