@@ -18,7 +18,27 @@ class OneLineFormatter(logging.Formatter):
 
     def format(self, record: logging.LogRecord) -> str:
         text = super().format(record)
-        return text.replace("\r", "").replace("\n", " | ")
+        return bound_line(escape_controls(text.replace("\r", "").replace("\n", " | ")))
+
+
+MAX_LINE = 8_000        # characters of one log line; a longer one keeps its start and its end
+_KEEP_TAIL = 1_500      # the end of a long line (a traceback's last frames and its error)
+
+
+def escape_controls(text: str) -> str:
+    """Text with every non-printable character (ESC, NEL, U+2028, tabs ...) written as a Python escape, so data
+    cannot move the cursor of a terminal, colour it or split one event into several lines."""
+    if text.isprintable():
+        return text
+    return "".join(c if c.isprintable() else repr(c)[1:-1] for c in text)
+
+
+def bound_line(text: str, limit: int = MAX_LINE) -> str:
+    """``text`` cut to at most about ``limit`` characters, saying how much was left out of the middle."""
+    if len(text) <= limit:
+        return text
+    cut = len(text) - limit
+    return f"{text[:limit - _KEEP_TAIL]} …[{cut} characters cut]… {text[-_KEEP_TAIL:]}"
 
 
 _LOGGERS = {"lotwarden": logging.INFO, "monitor": logging.INFO, "apscheduler": logging.WARNING,
