@@ -22,11 +22,13 @@ Test hook: ``LOTWARDEN_CRASH_AT=<point>[:<n>]`` makes the process SIGKILL itself
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import logging
 import os
 import signal
 import sqlite3
+import stat
 import threading
 from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
@@ -40,6 +42,7 @@ from monitor.daemon import accumulate, archive, judge
 from monitor.daemon.accumulate import Judging, Tally, lot_name
 from monitor.daemon.config import Config
 from monitor.daemon.store import Store, inserted_id, utc_iso
+from monitor.daemon.watcher import entry_kind
 from monitor.errors import ExportError
 from monitor.lot import LotKey, Verdict
 from monitor.rulebook import RULE_KEYS, Rule, match_rule
@@ -56,7 +59,8 @@ Clock = Callable[[], datetime]
 @dataclass(frozen=True)
 class FileOutcome:
     """What happened to one file. ``status``: taken | revision | duplicate | rejected | archived (a move
-    left by a crash was finished) | vanished | unreadable."""
+    left by a crash was finished) | vanished | unreadable | ignored (not a regular file: a symlink, FIFO,
+    device or socket is never opened for reading, nor moved)."""
 
     path: str
     status: str
@@ -186,13 +190,24 @@ class Intake:
 
     def _read_file(self, it: _Item) -> None:
         try:
-            with open(it.path, "rb") as fh:
+            # Never follow a link, never wait on a FIFO: only a regular file's own bytes are read, and no more
+            # of them than its size when it was opened.
+            fd = os.open(it.path, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC)
+            with os.fdopen(fd, "rb") as fh:
                 st = os.fstat(fh.fileno())
-                it.data = fh.read()
+                if not stat.S_ISREG(st.st_mode):
+                    it.outcome = FileOutcome(str(it.path), "ignored", reason=f"not a regular file "
+                                             f"({entry_kind(st.st_mode)}); only regular files are taken")
+                    return
+                it.data = fh.read(st.st_size)
         except FileNotFoundError:
             it.outcome = FileOutcome(str(it.path), "vanished", reason="the file is no longer in the drop folder")
             return
         except OSError as exc:
+            if exc.errno == errno.ELOOP:      # O_NOFOLLOW met a symbolic link
+                it.outcome = FileOutcome(str(it.path), "ignored", reason="not a regular file (symbolic link); "
+                                         "only regular files are taken")
+                return
             it.outcome = FileOutcome(str(it.path), "unreadable", reason=f"cannot read: {exc.strerror or exc}; "
                                                                         "will retry")
             return

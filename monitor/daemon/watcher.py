@@ -12,6 +12,7 @@ import errno
 import fnmatch
 import logging
 import os
+import stat as stat_module
 import threading
 import time
 from dataclasses import dataclass
@@ -69,6 +70,16 @@ class NameFilter:
         return path if self.accepts(name) else None
 
 
+def entry_kind(mode: int) -> str:
+    """What a non-regular directory entry is, in words ("symbolic link", "FIFO", ...)."""
+    for test, word in ((stat_module.S_ISLNK, "symbolic link"), (stat_module.S_ISFIFO, "FIFO"),
+                       (stat_module.S_ISCHR, "character device"), (stat_module.S_ISBLK, "block device"),
+                       (stat_module.S_ISSOCK, "socket"), (stat_module.S_ISDIR, "folder")):
+        if test(mode):
+            return word
+    return "not a regular file"
+
+
 def scan(folder: Path, names: NameFilter) -> list[Path]:
     """Every regular file directly in ``folder`` whose name passes ``names``, oldest mtime first."""
     found: list[tuple[float, str, Path]] = []
@@ -107,7 +118,7 @@ class SettleTracker:
     Thread-safe: hints come from the observer thread, looks from the main loop.
     """
 
-    def __init__(self, settle_seconds: float, *, stat: StatFn = os.stat, clock: ClockFn = time.monotonic,
+    def __init__(self, settle_seconds: float, *, stat: StatFn = os.lstat, clock: ClockFn = time.monotonic,
                  marker_for: Callable[[Path], str | None] | None = None, trust_mtime: bool = False,
                  wall_clock: ClockFn = time.time) -> None:
         self.settle_seconds = float(settle_seconds)
@@ -117,6 +128,7 @@ class SettleTracker:
         self._wall = wall_clock
         self._marker_for = marker_for or (lambda p: None)
         self._candidates: dict[Path, _Candidate] = {}
+        self._ignored: set[tuple[str, int, int]] = set()
         self._lock = threading.Lock()
 
     def hint(self, path: Path, moved: bool = False) -> None:
@@ -168,6 +180,14 @@ class SettleTracker:
         except OSError as exc:
             log.warning("cannot stat %s: %s; will look again", path, exc)
             return "waiting"
+        mode = getattr(st, "st_mode", None)
+        if mode is not None and not stat_module.S_ISREG(mode):
+            key = (str(path), int(st.st_ino), mode)
+            if key not in self._ignored:      # said once per entry, however often its events come
+                self._ignored.add(key)
+                log.warning("ignored %s: not a regular file (%s); only regular files are taken", path,
+                            entry_kind(mode))
+            return "gone"
         suffix = self._marker_for(path)
         if suffix:
             try:
