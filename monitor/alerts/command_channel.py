@@ -6,12 +6,21 @@ or a program that cannot be started, means give up (the delivery is marked dead 
 
 from __future__ import annotations
 
+import os
 import subprocess
 
 from monitor.alerts.delivery import GiveUp, RetryLater
 from monitor.alerts.settings import CommandSettings
 
 EX_TEMPFAIL = 75
+# The only variables the hook inherits: enough to find programs and decode text, never the daemon's secrets
+# (the SMTP password variable, whatever its name, is not among them).
+PASSED_ENV = ("PATH", "HOME", "LANG", "LC_ALL", "LC_CTYPE", "TZ", "TMPDIR", "USER", "LOGNAME")
+
+
+def hook_environment() -> dict[str, str]:
+    """The minimal environment the command hook runs in."""
+    return {k: os.environ[k] for k in PASSED_ENV if k in os.environ}
 
 
 class CommandChannel:
@@ -27,7 +36,8 @@ class CommandChannel:
         try:
             done = subprocess.run(list(self.settings.argv), input=(payload + "\n").encode("utf-8"),
                                   stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                                  timeout=self.settings.timeout, shell=False, check=False)
+                                  timeout=self.settings.timeout, shell=False, check=False,
+                                  env=hook_environment())
         except subprocess.TimeoutExpired:
             raise RetryLater(f"command timed out after {self.settings.timeout:g} s and was killed") from None
         except OSError as exc:

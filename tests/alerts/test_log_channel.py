@@ -118,3 +118,20 @@ def test_hold_line_carries_the_lot_numbers_at_top_level() -> None:
     assert (obj["n"], obj["mean"], obj["p_value"], obj["verdict"]) == (30, 501.2, 0.001, "hold")
     assert "values" not in obj and obj["data"]["values"] == [501.0, 501.4]
     assert Alert.from_json(obj).data == data
+
+
+def test_command_hook_runs_without_the_daemons_secrets(db_path, tmp_path, put, alert_factory, monkeypatch):
+    """The hook inherits a minimal environment: PATH is there, the SMTP password variable is not."""
+    monkeypatch.setenv("LOTWARDEN_SMTP_PASSWORD", "brackenfield-secret-7")
+    out = tmp_path / "env.txt"
+    script = tmp_path / "hook.py"
+    script.write_text("import os, sys\nsys.stdin.read()\nopen(sys.argv[1], 'w').write(repr(dict(os.environ)))\n")
+    settings = AlertSettings(command=CommandSettings(argv=(sys.executable, str(script), str(out)), timeout=20))
+    put(alert_factory(lot="E1"), ["command"])
+    d = Dispatcher(db_path, settings)
+    try:
+        assert d.drain() == 1
+    finally:
+        d.close()
+    seen = out.read_text()
+    assert "brackenfield-secret-7" not in seen and "LOTWARDEN_SMTP_PASSWORD" not in seen and "'PATH'" in seen
