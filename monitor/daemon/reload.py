@@ -11,6 +11,7 @@ from __future__ import annotations
 import hashlib
 import logging
 from dataclasses import dataclass, field
+from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Callable
 
@@ -93,6 +94,13 @@ def decide_reload(fp: Fingerprint, applied: Fingerprint | None, seen: Fingerprin
     return ReloadStep("reload")
 
 
+def kept_rules(old: list[Any], loaded: list[Any]) -> list[Any]:
+    """Rules in force whose files are gone and that no loaded rule replaces (same name): they stay."""
+    names = {r.name for r in loaded}
+    return [r for r in old if r.name not in names and getattr(r, "source", None)
+            and not Path(r.source).exists()]
+
+
 class Reloading:
     """Mixin for the daemon: the reload check and reload on the loop thread.
 
@@ -117,6 +125,7 @@ class Reloading:
     _audit: Callable[..., None]
     _emit_alert: Callable[[str, str, dict[str, Any]], bool]
     _event: Callable[[str, dict[str, Any]], None]
+    _good_since: str = ""          # when the config and rules in force were loaded (start or last reload)
 
     def _fingerprint(self, config: Any) -> Fingerprint:
         return take_fingerprint(self.config_path, config.rules_dir, getattr(config.alerts, "templates", None))
@@ -131,11 +140,9 @@ class Reloading:
             self._reject(LotwardenError(
                 "rule file removed; keeping its last good version (send SIGHUP to accept a removal)",
                 path=Path(self._config.rules_dir) / step.missing[0], key="rules_dir"), fp)
-            self._applied_fp = fp
-            return
-        self._reload(fp)
+        self._reload(fp, forced)
 
-    def _reload(self, fp: Fingerprint) -> None:
+    def _reload(self, fp: Fingerprint, forced: bool = False) -> None:
         from monitor.daemon.config import load_config
 
         try:
@@ -145,6 +152,8 @@ class Reloading:
             self._reject(exc, fp)
             self._applied_fp = self._seen_fp = fp   # do not re-try the same bad picture every check
             return
+        if not forced:   # a rule whose file is gone stays in force until SIGHUP confirms the removal
+            rules = rules + kept_rules(self._rules, rules)
         old, old_fp = self._config, self._applied_fp
         self._config, self._rules = config, rules
         self._applied_fp = self._seen_fp = self._fingerprint(config)
@@ -165,6 +174,7 @@ class Reloading:
             self._schedule_dispatcher()
         elif old_fp is not None and self._applied_fp.templates != old_fp.templates:
             self._reload_templates(config)
+        self._good_since = datetime.now(timezone.utc).isoformat()
         self._audit("config-reloaded", config_version=getattr(config, "version", ""),
                     rules={r.name: r.version for r in rules})
         log.info("reloaded: config version %s, %d rules (%s)", getattr(config, "version", "?"), len(rules),
@@ -189,7 +199,8 @@ class Reloading:
         digest = content_hash([bad])
         log.error("config rejected, keeping the last good version: %s", exc)
         self._audit("config-rejected", file=str(bad), key=exc.key, message=str(exc), content_sha256=digest)
-        self._emit_alert("config-rejected", f"config-rejected|{bad}|{digest[:16]}",
+        # the same bad edit made again after a good version was in force is a new alert
+        self._emit_alert("config-rejected", f"config-rejected|{bad}|{digest[:16]}|{self._good_since}",
                          {"file": str(bad), "key": exc.key, "line": exc.line, "message": str(exc),
                           "content_sha256": digest})
         self._event("config-rejected", {"error": str(exc)})
