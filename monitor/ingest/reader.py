@@ -17,7 +17,7 @@ from monitor.ingest import convert
 from monitor.ingest.profile import CANONICAL_COLUMNS, DEFAULT_PROFILE, FeedProfile
 from monitor.ingest.frames import empty_frame, frame_of, repeat_text, str_array
 from monitor.ingest.table import FRAME_TEXT, TEXT, RawTable, split_body
-from monitor.ingest.text import Header, decode, decode_mapped, find_header
+from monitor.ingest.text import Header, decode, decode_large, find_header
 from monitor.units import ALLOWED as ALLOWED_UNITS
 from monitor.units import conversion_factor
 
@@ -31,8 +31,8 @@ _GIVE_BACK_ROWS = 50_000
 # From this many rows the independent column work (units, timestamps, frame columns) runs on worker threads:
 # Arrow's compute functions let go of the GIL, so a large file's columns are converted side by side.
 PARALLEL_ROWS = 200_000
-# From this size the decode checks run in place, part of them on a worker thread (text.decode_mapped).
-MAP_MIN_BYTES = 1 << 20
+# From this size the decode checks run in place, part of them on a worker thread (text.decode_large).
+LARGE_FILE_BYTES = 1 << 20
 ISO_PARTS = 4  # a large file's ISO timestamp check in this many parts (two workers and the main thread)
 _POOL: list[ThreadPoolExecutor] = []
 
@@ -105,7 +105,7 @@ def _read(holder: list[bytes], name: str, profile: FeedProfile | None) -> Export
     """
     prof = profile or DEFAULT_PROFILE
     data = holder.pop()
-    buf = (decode_mapped(data, prof, name, _pool()) if len(data) >= MAP_MIN_BYTES
+    buf = (decode_large(data, prof, name, _pool()) if len(data) >= LARGE_FILE_BYTES
            else decode(data, prof, name))
     del data
     header = find_header(buf, prof, name)

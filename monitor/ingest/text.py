@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import codecs
 import csv
-import mmap
 import re
 from concurrent.futures import Executor
 from dataclasses import dataclass
@@ -14,7 +13,7 @@ import numpy as np
 from monitor.errors import ExportError
 from monitor.ingest.profile import FALLBACK_ENCODINGS, FeedProfile
 
-Text = bytes | mmap.mmap  # decoded export text: bytes, or the memory map of a file that needed no decoding
+Text = bytes  # decoded export text: UTF-8, BOM removed, every line ending "\n"
 _UTF8_BOM = codecs.BOM_UTF8
 _UTF16_BOMS = (codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)
 _UTF32_BOMS = (codecs.BOM_UTF32_LE, codecs.BOM_UTF32_BE)
@@ -39,13 +38,12 @@ class Header:
     body_start: int
 
 
-def decode_mapped(data: bytes | mmap.mmap, profile: FeedProfile, name: str, pool: Executor | None = None
-                  ) -> Text:
-    """What ``decode`` gives for a large file: the bytes (or map) themselves when they are the text already.
+def decode_large(data: bytes, profile: FeedProfile, name: str, pool: Executor | None = None) -> Text:
+    """What ``decode`` gives for a large file: the bytes themselves when they are the text already.
 
     A file of ASCII bytes without NUL or carriage return (the usual export) in an 8-bit or UTF-8 encoding
     is its own decoded text (no byte-order mark can be ASCII), so it is checked in place and not copied;
-    any other file is copied to bytes and decoded as ``decode`` does. ``pool`` runs part of the check.
+    any other file is decoded as ``decode`` does. ``pool`` runs part of the check.
     """
     if profile.encoding in ("auto", *FALLBACK_ENCODINGS, "utf-8") and len(data):
         view = np.frombuffer(data, dtype=np.uint8)
@@ -53,11 +51,11 @@ def decode_mapped(data: bytes | mmap.mmap, profile: FeedProfile, name: str, pool
         top = pool.submit(np.max, view) if pool is not None else None
         plain = data.find(b"\x00") < 0 and data.find(b"\r") < 0
         ascii_only = int(top.result() if top is not None else view.max()) < 0x80
-        del view, top  # the map cannot be closed while an array looks at it
+        del view, top
         if plain and ascii_only:
             _refuse_empty(data, name, len(data))
             return data
-    return decode(data[:], profile, name)
+    return decode(data, profile, name)
 
 
 def decode(data: bytes, profile: FeedProfile, name: str) -> bytes:

@@ -49,9 +49,8 @@ def digests(tmp_path):
     return [x for x in map(json.loads, p.read_text().splitlines()) if x["kind"] == "digest"] if p.exists() else []
 
 
-def test_digest_counts_and_period(db_path, tmp_path):
-    """06:00 Europe/Berlin is 05:00 UTC in December (CET = UTC+1, IANA tz database); counts follow the rows."""
-    seed_daemon_tables(db_path)
+def raise_digest_at_six(db_path, tmp_path) -> dict:
+    """Raise and deliver the 06:00 Europe/Berlin digest of 2026-12-02; return the one digest line logged."""
     d = Dispatcher(db_path, settings(tmp_path))
     try:
         assert d.run_digest(now=ts("2026-12-02T05:00:30+00:00"))
@@ -59,6 +58,13 @@ def test_digest_counts_and_period(db_path, tmp_path):
     finally:
         d.close()
     [dg] = digests(tmp_path)
+    return dg
+
+
+def test_digest_counts_and_period(db_path, tmp_path):
+    """06:00 Europe/Berlin is 05:00 UTC in December (CET = UTC+1, IANA tz database); counts follow the rows."""
+    seed_daemon_tables(db_path)
+    dg = raise_digest_at_six(db_path, tmp_path)
     data = dg["data"]
     assert data["period_start"] == "2026-12-01T05:00:00+00:00" and data["period_end"] == "2026-12-02T05:00:00+00:00"
     assert data["period_end_local"] == "2026-12-02 06:00"
@@ -142,12 +148,6 @@ def test_digest_counts_the_average_quantity_screen(db_path, tmp_path):
                   ("2026-12-01T12:00:00+00:00", "L3", "OAT-500", lot, "oat", "v1", v.verdict, v.n, v.mean,
                    503.0, "g", json.dumps(v.to_json())))
     c.close()
-    d = Dispatcher(db_path, settings(tmp_path))
-    try:
-        assert d.run_digest(now=ts("2026-12-02T05:00:30+00:00"))
-        d.drain(now=ts("2026-12-02T05:00:31+00:00"))
-    finally:
-        d.close()
-    [dg] = digests(tmp_path)
+    dg = raise_digest_at_six(db_path, tmp_path)
     [oat] = {ln["line"]: ln["products"] for ln in dg["data"]["lines"]}["L3"]
     assert oat["lots"] == 3 and oat["screen"] == {"met": 1, "not met": 1, "undecided": 0}

@@ -10,20 +10,20 @@ import pytest
 
 from monitor.errors import ExportError
 from monitor.ingest import read_export, read_export_bytes
-from monitor.ingest.reader import MAP_MIN_BYTES
+from monitor.ingest.reader import LARGE_FILE_BYTES
 
 HEADER = b"timestamp,line,product,lot,head,value,unit\n"
 
 
 def body(rows: int) -> tuple[list[bytes], np.ndarray]:
-    """Invented Brackenfield Foods L2 rows (OAT-500 bags) and their values, enough to pass the map size."""
+    """Invented Brackenfield Foods L2 rows (OAT-500 bags) and their values, enough to pass the large-file size."""
     values = np.round(500.0 + (np.arange(rows) % 97) * 0.1, 1)
     lines = [f"2026-12-02T07:{i // 60 % 60:02d}:{i % 60:02d},L2,OAT-500,C{i // 500:05d},{i % 8 + 1},{v},g"
              .encode() for i, v in enumerate(values)]
     return lines, values
 
 
-ROWS = MAP_MIN_BYTES // 40 + 5000  # each row is about 50 bytes: the file is larger than MAP_MIN_BYTES
+ROWS = LARGE_FILE_BYTES // 40 + 5000  # each row is about 50 bytes: the file is larger than LARGE_FILE_BYTES
 
 
 def test_a_large_file_reads_as_its_bytes_do(tmp_path: Path) -> None:
@@ -31,7 +31,7 @@ def test_a_large_file_reads_as_its_bytes_do(tmp_path: Path) -> None:
     data = HEADER + b"\n".join(lines) + b"\n"
     path = tmp_path / "brackenfield-L2.csv"
     path.write_bytes(data)
-    assert path.stat().st_size >= MAP_MIN_BYTES
+    assert path.stat().st_size >= LARGE_FILE_BYTES
     got = read_export(path)
     pd.testing.assert_frame_equal(got.rows, read_export_bytes(data, name=str(path)).rows)
     assert len(got.rows) == ROWS and not got.bad_rows and got.notes == ()
