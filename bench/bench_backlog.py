@@ -88,7 +88,7 @@ def run_intake(cfg_path: Path, files: list[Path], profile: bool, batch: int = 1)
     and audit included), and a few counts."""
     from monitor.daemon.config import load_config, load_rule_set
     from monitor.daemon.intake import Intake
-    from monitor.daemon.store import Store
+    from monitor.state.database import Database as Store
 
     cfg = load_config(cfg_path)
     store = Store.open(cfg.state.folder)

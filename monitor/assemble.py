@@ -1,9 +1,11 @@
-"""Groups the rows of one or more read exports into lots, in the unit of each lot's rule.
+"""Rows of read exports -> the lots the daemon would hold after the same files, in each lot's rule's unit.
 
-Pure: takes ``Export`` values (monitor.ingest) and rules, returns ``LotData`` ready for the engine.
-Used by ``lotwarden check``; the daemon assembles lots from its state store instead. Vectorised: the lot
-keys are factorised once, one stable argsort puts every lot's rows together in arrival order, and each
-lot is a slice of the sorted arrays (no per-lot pandas work).
+Pure: takes ``Export`` values (monitor.ingest) in arrival order and rules, returns ``LotData`` ready for the
+engine, for ``lotwarden check``. Which lots exist, and how many runs made each, come from the one lot model
+(``monitor.lotmodel.replay``: runs per line, closed by the next lot or a marker, reopened by late rows,
+everything closed at the end of input); a reopened lot holds all its values, old and late, as the daemon's
+does. Vectorised: the lot keys are factorised once, one stable argsort puts every lot's rows together in
+arrival order, and each lot is a slice of the sorted arrays (no per-lot pandas work).
 """
 
 from __future__ import annotations
@@ -16,9 +18,10 @@ from typing import TYPE_CHECKING
 import numpy as np
 import pandas as pd
 
-from monitor.lot import EXCLUSION_REASONS, LotData, LotKey, LotSummary
+from monitor.lot import EXCLUSION_REASONS, LotData, LotKey, LotSummary, no_rule_reason
+from monitor.lotmodel import FileRows, count_runs, markers_of, replay, runs_of_codes
 from monitor.rulebook import Rule
-from monitor.units import factor_to_rule_unit
+from monitor.units import to_rule_unit
 
 if TYPE_CHECKING:
     from monitor.ingest import Export
@@ -34,10 +37,6 @@ class AssembledLot:
     data: LotData
     rule: Rule | None
     problem: str | None = None
-
-
-def _no_rule(product: str) -> str:
-    return f"no rule matches product {product or '(none)'!r}"
 
 
 def _text(frame: pd.DataFrame, column: str) -> pd.Series:
@@ -82,7 +81,9 @@ def assemble_lots(exports: Sequence[Export],
     A lot's values keep arrival order across files (files in the order given), each converted into the
     rule's unit (``monitor.units.factor_to_rule_unit``; a value without a unit is taken to be in it and
     the lot says ``unit_assumed``). Rows without a usable value stay as NaN, counted per reason in
-    ``excluded_by``. Summary records are lots of their own; an unusable one is a lot with a ``problem``.
+    ``excluded_by``. Each lot says how many ``runs`` made it (``monitor.lotmodel``; a file with only end-of-lot
+    markers still closes lots). Summary records are lots of their own (one run each); an unusable one is a
+    lot with a ``problem``.
     ``rule_for(product)`` returns the judging rule or None; a rule with an empty ``unit`` (ad-hoc, no
     unit given) judges values in the unit they were exported in.
     """
@@ -93,8 +94,8 @@ def assemble_lots(exports: Sequence[Export],
             rules[product] = rule_for(product)
         return rules[product]
 
-    values_exports = [e for e in exports if e.kind != "summary" and len(e.rows)]
-    lots = _value_lots(values_exports, rule_of) if values_exports else []
+    values_exports = [e for e in exports if e.kind != "summary" and (len(e.rows) or e.end_of_lot)]
+    lots = _value_lots(values_exports, rule_of) if any(len(e.rows) for e in values_exports) else []
     summaries = [lot for e in exports if e.kind == "summary" for lot in _summary_lots(e, rule_of)]
     return lots + summaries
 
@@ -115,17 +116,16 @@ def _summary_lots(exp: Export, rule_of: Callable[[str], Rule | None]) -> list[As
         n = int(n) if isinstance(n, (int, np.integer)) or (isinstance(n, float) and np.isfinite(n)) else 0
         unit = rule.unit if rule is not None and rule.unit else src
         assumed = False
-        problem = None if rule is not None else _no_rule(key.product)
+        problem = None if rule is not None else no_rule_reason(key.product)
         if rule is not None:
-            try:
-                f, assumed = factor_to_rule_unit(src, rule.unit, exp.density)
-                mean, sd = mean * f, sd * abs(f)
-            except ValueError as exc:
-                problem = f"values in {src} cannot be judged in {rule.unit}: {exc}"
+            conv = to_rule_unit(src, rule.unit, exp.density)
+            assumed, problem = conv.assumed, conv.problem
+            if problem is None:
+                mean, sd = mean * conv.factor, sd * abs(conv.factor)
         if cols["problem"][j]:   # an unusable record is a review lot with its reason, never left out
             problem = f"the lot summary is not usable: {cols['problem'][j]}"
         data = LotData(key=key, summary=LotSummary(n, mean, sd), files=(exp.path,), unit=unit,
-                       unit_assumed=assumed)
+                       unit_assumed=assumed, runs=1)
         out.append(AssembledLot(data, rule, problem))
     return out
 
@@ -167,11 +167,11 @@ def _value_lots(exports: list[Export],
         rule = rule_of(products[prod_c[row]])
         if rule is None:
             continue
-        src = units[unit_c[row]]
-        try:
-            factor[c], assumed[c] = factor_to_rule_unit(src, rule.unit, exports[file_of_row[row]].density)
-        except ValueError as exc:
-            failure[c] = str(exc)
+        conv = to_rule_unit(units[unit_c[row]], rule.unit, exports[file_of_row[row]].density)
+        if conv.problem is None:
+            factor[c], assumed[c] = conv.factor, conv.assumed
+        else:
+            failure[c] = conv.problem
     row_factor = factor[combo]
     converted = values if bool((row_factor == 1.0).all()) else values * row_factor
     sorted_values = converted[order]
@@ -180,7 +180,8 @@ def _value_lots(exports: list[Export],
     if failure:                                              # a lot names the unit of its first failing row
         failed_rows = np.flatnonzero(np.isin(combo, np.fromiter(failure, dtype=np.int64)))
         failed_lots, at = np.unique(lot_of_row[failed_rows], return_index=True)
-        lot_failure = {lot: failure[int(combo[failed_rows[j]])] for lot, j in zip(failed_lots.tolist(), at.tolist())}
+        lot_failure = {lot: failure[int(combo[failed_rows[j]])]
+                       for lot, j in zip(failed_lots.tolist(), at.tolist(), strict=True)}
     # Ad-hoc rule without a unit: a lot is judged in its exported unit, which must be one unit.
     named = unit_c[order]
     nonblank = np.array([u != "" for u in units])[named]
@@ -215,30 +216,55 @@ def _value_lots(exports: list[Export],
     f_first = sorted_files[starts].tolist()
     f_last = sorted_files[ends - 1].tolist()
 
+    # Runs: the files through the one lot model, in the order given, as the daemon takes them.
+    keys = [LotKey(lines[lot_line[i]], products[lot_prod[i]], lot_names[lot_code[i]]) for i in range(k)]
+    runs = _runs(exports, lot_of_row, sizes, keys, line_c[first])
+
     out: list[AssembledLot] = []
     start_l, end_l = starts.tolist(), ends.tolist()
     assumed_l, heads_l = lot_assumed.tolist(), lot_has_heads.tolist()
     for i in range(k):
         a, b = start_l[i], end_l[i]
-        key = LotKey(lines[lot_line[i]], products[lot_prod[i]], lot_names[lot_code[i]])
+        key = keys[i]
         rule = rule_of(key.product)
         problem: str | None = None
         unit = units[lot_unit_l[i]] if lot_unit_l[i] >= 0 else ""
         if rule is None:
-            problem = _no_rule(key.product)
+            problem = no_rule_reason(key.product)
         elif not rule.unit:
             if lot_mixed_l[i]:
                 problem = "the lot mixes units; give --unit to convert them"
         else:
             unit = rule.unit
             if i in lot_failure:
-                problem = f"values cannot be judged in {rule.unit}: {lot_failure[i]}"
+                problem = lot_failure[i]
         files = (paths[f_first[i]],) if f_first[i] == f_last[i] else \
             tuple(paths[f] for f in np.unique(sorted_files[a:b]).tolist())
         data = LotData(key=key, values=sorted_values[a:b], heads=tuple(sorted_heads[a:b]) if heads_l[i] else None,
-                       files=files, unit=unit, unit_assumed=assumed_l[i], excluded_by=excluded_by.get(i, _NONE))
+                       files=files, unit=unit, unit_assumed=assumed_l[i], excluded_by=excluded_by.get(i, _NONE),
+                       runs=runs[i])
         out.append(AssembledLot(data, rule, problem))
     return out
+
+
+def _runs(exports: list[Export], lot_of_row: np.ndarray, sizes: np.ndarray, keys: list[LotKey],
+          line_of_lot: np.ndarray) -> list[int]:
+    """Per lot (code), how many runs made it: each file's rows (codes ``lot_of_row``, ``sizes`` rows per file)
+    and markers replayed through ``monitor.lotmodel`` in the order given, the way the daemon takes them
+    (without markers, by the model's vectorised count)."""
+    if not any(exp.end_of_lot for exp in exports):
+        return count_runs(lot_of_row, line_of_lot).tolist()
+    offsets = np.concatenate(([0], np.cumsum(sizes))).tolist()
+    files = []
+    for f, exp in enumerate(exports):
+        rows = exp.rows
+        n = int(sizes[f])
+        src = (rows["source_line"].to_numpy(dtype=np.int64) if "source_line" in rows.columns and n
+               else np.arange(1, n + 1, dtype=np.int64))
+        files.append(FileRows(runs_of_codes(lot_of_row[offsets[f]:offsets[f + 1]], keys), src,
+                              markers_of(exp.end_of_lot)))
+    per_key = replay(files).runs
+    return [per_key.get(key, 1) for key in keys]
 
 
 def _lot_units(named: np.ndarray, nonblank: np.ndarray, starts: np.ndarray,

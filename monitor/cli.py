@@ -9,7 +9,8 @@ from __future__ import annotations
 import argparse
 import importlib
 import sys
-from typing import Sequence
+from collections.abc import Sequence
+from typing import NoReturn
 
 from monitor import __version__
 from monitor.errors import LotwardenError
@@ -18,7 +19,7 @@ COMMANDS = ("check", "plan", "run", "validate", "demo")
 
 
 class _Parser(argparse.ArgumentParser):
-    def error(self, message: str) -> None:  # usage errors -> exit 2 with one line, as argparse does
+    def error(self, message: str) -> NoReturn:  # usage errors -> exit 2 with one line, as argparse does
         self.print_usage(sys.stderr)
         self.exit(2, f"lotwarden: error: {message}\n")
 

@@ -425,7 +425,7 @@ def _verdict(lot: LotData, rule: Rule, i: int, c: _Columns, values: np.ndarray |
                    alpha=rule.alpha, effect_size=effect, normality=normality, power=pw, n_for_power=nfp,
                    verdict=verdict, reason=reason, excluded=c.excluded[i], heads=head_rows, files=lot.files,
                    average_quantity=aq, unit_assumed=lot.unit_assumed, excluded_by=excluded_by,
-                   wilcoxon=wilcoxon_info, **fields)
+                   wilcoxon=wilcoxon_info, runs=lot.runs, **fields)
 
 
 def _test_reason(verdict: str, what: str, estimate: float, rule: Rule, f: dict[str, Any], q: Any,

@@ -1,4 +1,4 @@
-"""Renders the reference tables of every config, profile and rule key from the tables that validate them.
+"""Renders README's reference of every config, profile, rule and alert key from their declarations in monitor.keys.
 
 README.md carries the output between ``<!-- keys:begin -->`` and ``<!-- keys:end -->``; a test fails when
 the two differ, so a key can't be added without being documented. Refresh with ``python -m monitor.keysdoc``.
@@ -8,14 +8,13 @@ from __future__ import annotations
 
 import sys
 from pathlib import Path
-from typing import Any, Mapping
+
+from monitor.keys import SECTIONS, TYPES, Derived, Key, Required, Section
 
 BEGIN, END = "<!-- keys:begin -->", "<!-- keys:end -->"
 
 
-def _default(value: Any) -> str:
-    if value is None:
-        return "—"
+def _value(value: object) -> str:
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, (tuple, list)):
@@ -27,25 +26,39 @@ def _default(value: Any) -> str:
     return f"{value:g}" if isinstance(value, float) else str(value)
 
 
-def _table(title: str, keys: Mapping[str, tuple[Any, str]], prefix: str = "") -> list[str]:
-    out = [f"**{title}**", "", "| key | default | meaning |", "|---|---|---|"]
-    for key, (default, doc) in keys.items():
-        doc = doc.replace("|", "\\|")
-        d = _default(default)
-        d = d if d == "—" else f"`{d}`"
-        out.append(f"| `{prefix}{key}` | {d} | {doc} |")
-    return out + [""]
+def default_text(key: Key) -> str:
+    """The default as the reference shows it: required, — (not set), a derived rule, or the value."""
+    d = key.default
+    if isinstance(d, Required):
+        return "required"
+    if isinstance(d, Derived):
+        return f"`{d.text}`"
+    if d is None:
+        return "—"
+    if key.type == "table":
+        return "`{}`"
+    return f"`{_value(d)}`"
 
 
-def render() -> str:
-    from monitor.alerts.settings import ROUTE_KEYS
-    from monitor.daemon.config import CONFIG_KEYS
-    from monitor.rulebook import NORMALITY_KEYS, RULE_KEYS
+def type_text(key: Key) -> str:
+    return "path" if key.path else TYPES[key.type]
 
-    lines = _table("Daemon config (`config/lotwarden.toml`)", CONFIG_KEYS)
-    lines += _table("E-mail routes (`[[alerts.email.route]]`)", ROUTE_KEYS, "alerts.email.route.")
-    lines += _table("Rule files (`rules/*.toml`)", RULE_KEYS)
-    lines += _table("Rule files, `[normality]` table", NORMALITY_KEYS, "normality.")
+
+def section_lines(section: Section) -> list[str]:
+    """One section as a Markdown table: key path, type, default, meaning."""
+    out = [f"**{section.title}**", "", "| key | type | default | meaning |", "|---|---|---|---|"]
+    for key in section.keys:
+        doc = key.doc.replace("|", "\\|")
+        out.append(f"| `{section.prefix}{key.name}` | {type_text(key)} | {default_text(key)} | {doc} |")
+    out.append("")
+    return out
+
+
+def render(sections: tuple[Section, ...] = SECTIONS) -> str:
+    """The whole key reference, one table per section."""
+    lines: list[str] = []
+    for section in sections:
+        lines += section_lines(section)
     return "\n".join(lines).rstrip() + "\n"
 
 

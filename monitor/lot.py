@@ -8,8 +8,9 @@ is the one JSON shape used by ``check --format json``, the alert log and alert t
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any, Mapping
+from typing import Any
 
 import numpy as np
 
@@ -26,6 +27,11 @@ def excluded_counts(given: Mapping[str, int] | None, total: int) -> dict[str, in
     if rest > 0:
         out["not_finite"] += rest
     return out
+
+
+def no_rule_reason(product: str) -> str:
+    """The reason of the `review` verdict of a lot whose product no rule names (``check`` and the daemon)."""
+    return f"no rule matches product {product or '(none)'!r}; add a rule file naming it under `products`"
 
 
 @dataclass(frozen=True)
@@ -67,6 +73,7 @@ class LotData:
     unit: str = "g"
     unit_assumed: bool = False
     excluded_by: Mapping[str, int] = field(default_factory=dict)
+    runs: int | None = None
 
     def __post_init__(self) -> None:
         if (self.values is None) == (self.summary is None):
@@ -161,6 +168,7 @@ class Verdict:
     unit_assumed: bool = False     # the values carried no unit and were taken to be in the rule's unit
     excluded_by: Mapping[str, int] = field(default_factory=lambda: excluded_counts(None, 0))
     wilcoxon: WilcoxonInfo | None = None   # set when test == "wilcoxon"
+    runs: int | None = None        # separate runs of rows that made the lot (monitor.lotmodel); None: not counted
 
     def to_json(self) -> dict[str, Any]:
         """The documented JSON object (``check --format json``, alert log, templates)."""
@@ -199,7 +207,17 @@ class Verdict:
             "wilcoxon": None if self.wilcoxon is None else self.wilcoxon.to_json(),
             "heads": [h.to_json() for h in self.heads],
             "average_quantity": None if self.average_quantity is None else self.average_quantity.to_json(),
+            "runs": self.runs,
         }
+
+    def with_runs(self, runs: int | None) -> Verdict:
+        """This verdict with ``runs`` set: a shallow copy (a batch of lots cannot afford ``replace``'s
+        re-validation per verdict), never a change to ``self``."""
+        if runs == self.runs:
+            return self
+        new = object.__new__(Verdict)
+        new.__dict__.update(self.__dict__, runs=runs)
+        return new
 
 
 def _num(x: float | None) -> float | None:
@@ -234,4 +252,5 @@ def unjudged(lot: LotData, reason: str, *, rule_name: str = "", rule_version: st
         normality=NormalityResult(test=None, statistic=None, p_value=None, passed=None, note="not assessed"),
         power=None, n_for_power=None, verdict="review", reason=reason, files=lot.files,
         excluded=excluded, unit_assumed=lot.unit_assumed, excluded_by=excluded_counts(lot.excluded_by, excluded),
+        runs=lot.runs,
     )

@@ -93,9 +93,9 @@ def write_feeds(folder: Path) -> list[Path]:
 
     # Line L3 — juice cartons weighed gross (g): tare 28 g, density 1.045 g/mL. Rule: target 1003 mL,
     # alternative "less" (short fill is the legal risk), known process sd 2.5 mL -> z-test.
-    rows = []
+    rows: list[str] = []
     for lot, n, mean_ml in (("JC-0901", 30, 1003.4), ("JC-0902", 30, 1001.2)):
-        for i in range(n):
+        for _ in range(n):
             net_g = rng.normal(mean_ml, 2.5) * 1.045
             rows.append(f"{_stamp(len(rows), START, 6.0)},L3,JUICE-1L,{lot},,{net_g + 28.0:.1f},g")
     f3 = folder / "L3-juice-20261130-0600.csv"

@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import math
+from dataclasses import dataclass
+
 import numpy as np
 
 # canonical name -> (kind, factor to the kind's base unit: g for mass, mL for volume)
@@ -62,6 +65,31 @@ def factor_to_rule_unit(src: str, rule_unit: str, density: float | None = None) 
     if not rule_unit:
         return 1.0, False
     return conversion_factor(src, rule_unit, density), False
+
+
+@dataclass(frozen=True)
+class RuleUnitFactor:
+    """How values of one unit enter the judging rule's unit: the factor (NaN when they cannot), whether
+    the unit was assumed, and the reason they cannot be judged (None when they can)."""
+
+    factor: float
+    assumed: bool
+    problem: str | None = None
+
+
+def to_rule_unit(src: str, rule_unit: str, density: float | None = None) -> RuleUnitFactor:
+    """``factor_to_rule_unit`` that never raises: a pair that cannot be converted carries its ``problem``
+    (``unit_problem``), the one wording ``check`` and the daemon give such a lot."""
+    try:
+        factor, assumed = factor_to_rule_unit(src, rule_unit, density)
+    except ValueError as exc:
+        return RuleUnitFactor(math.nan, False, unit_problem(src, rule_unit, exc))
+    return RuleUnitFactor(factor, assumed)
+
+
+def unit_problem(src: str, rule_unit: str, why: object) -> str:
+    """Why values in ``src`` cannot be judged under a rule in ``rule_unit``."""
+    return f"values in {src!r} cannot be judged in {rule_unit}: {why}"
 
 
 def convert(values: np.ndarray, src: str, dst: str, density: float | None = None) -> np.ndarray:

@@ -15,7 +15,8 @@ README = (REPO / "README.md").read_text(encoding="utf-8")
 
 
 def test_readme_key_reference_is_current() -> None:
-    """The keys section equals the rendering of the validation tables (refresh: python -m monitor.keysdoc)."""
+    """The keys section equals the rendering of the key declarations in monitor.keys (refresh: python -m
+    monitor.keysdoc), so a key added without regenerating the reference fails here."""
     section = README.split(BEGIN, 1)[1].split(END, 1)[0]
     assert section.strip() == render().strip()
 

@@ -148,3 +148,21 @@ def test_mixup_batch_equals_one_by_one():
     assert batch == [evaluate(lot, r) for lot in lots]
     assert sum(v.reason.startswith("values look like kg") for v in batch) == 15
     assert sum(v.unit_assumed for v in batch) == 15
+
+
+def test_to_rule_unit_is_the_one_conversion_into_the_rule_unit():
+    """monitor.units.to_rule_unit: factors of NIST SP 811 appendix B.8 (oz -> g, L -> mL, fl oz -> mL), a value
+    without a unit is assumed in the rule's unit, and a pair it cannot convert carries a reason naming both
+    units instead of raising."""
+    from monitor.units import to_rule_unit
+
+    assert to_rule_unit("oz", "g").factor == pytest.approx(GRAMS["oz"], rel=1e-15)
+    assert to_rule_unit("kg", "g").factor == pytest.approx(GRAMS["kg"], rel=1e-15)
+    assert to_rule_unit("fl oz", "L").factor == pytest.approx(MILLILITRES["fl oz"] / MILLILITRES["L"], rel=1e-15)
+    # density 1.25 g/mL: 1 g is 0.8 mL (mass / density)
+    assert to_rule_unit("g", "mL", 1.25).factor == pytest.approx(0.8, rel=1e-15)
+    blank = to_rule_unit("", "mL")
+    assert (blank.factor, blank.assumed, blank.problem) == (1.0, True, None)
+    bad = to_rule_unit("g", "mL")
+    assert np.isnan(bad.factor) and bad.assumed is False
+    assert bad.problem is not None and "'g'" in bad.problem and "mL" in bad.problem and "density" in bad.problem

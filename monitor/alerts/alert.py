@@ -48,8 +48,8 @@ class Alert:
 
     def to_json(self) -> dict[str, Any]:
         """The alert-log object. For hold, review and verdict-changed alerts the lot's (new) numbers also
-        stand at the top level, keyed as in ``lotwarden check --format json`` (``n``, ``mean``, ``p_value``, ``verdict``, ...);
-        ``data`` keeps everything, the lot's values included."""
+        stand at the top level, keyed as in ``lotwarden check --format json`` (``n``, ``mean``, ``p_value``,
+        ``verdict``, ...); ``data`` keeps everything, the lot's values included."""
         obj: dict[str, Any] = {"kind": self.kind, "dedup_key": self.dedup_key, "created_at": self.created_at,
                                "line": self.line, "product": self.product, "lot": self.lot}
         if self.kind in VERDICT_KINDS:
@@ -63,7 +63,7 @@ class Alert:
         return json.dumps(self.to_json(), sort_keys=True, ensure_ascii=False, allow_nan=False)
 
     @classmethod
-    def from_json(cls, obj: dict[str, Any]) -> "Alert":
+    def from_json(cls, obj: dict[str, Any]) -> Alert:
         return cls(kind=obj["kind"], dedup_key=obj["dedup_key"], created_at=obj["created_at"],
                    data=obj.get("data", {}), line=obj.get("line", ""), product=obj.get("product", ""),
                    lot=obj.get("lot", ""))

@@ -1,8 +1,9 @@
 """The daily digest: each line's lots since the last digest (passed, held, reviewed, mean offset from
 target) and the export files used or rejected, raised once per scheduled time even across restarts.
 
-The scheduled time a digest covers is stored in ``digest_runs`` in the same transaction that enqueues the
-digest alert, so a restart around the cron time neither loses nor repeats it.
+The digest is a scheduled producer: it enqueues a digest alert like any other and knows nothing of the
+channels. The scheduled time a digest covers is stored in ``digest_runs`` in the same transaction that
+enqueues the alert, so a restart around the cron time neither loses nor repeats it.
 """
 
 from __future__ import annotations
@@ -10,18 +11,22 @@ from __future__ import annotations
 import logging
 import math
 import sqlite3
-from datetime import datetime, timedelta, timezone
-from typing import TYPE_CHECKING, Any, Iterator
+import threading
+import time
+from collections.abc import Callable, Iterator
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+from typing import Any
 from zoneinfo import ZoneInfo
 
 from apscheduler.triggers.cron import CronTrigger
 
-from monitor.alerts import outbox
-from monitor.alerts.alert import Alert
+from monitor.alerts import kinds
 from monitor.alerts.settings import DigestSettings
-
-if TYPE_CHECKING:
-    from monitor.alerts.dispatch import Dispatcher
+from monitor.state import outbox as repo
+from monitor.state.database import write_tx
+from monitor.state.files import processed_since
+from monitor.state.verdicts import decided_between
 
 log = logging.getLogger("monitor.alerts")
 MAX_LISTED_FILES = 50
@@ -50,7 +55,7 @@ def last_two_fire_times(trigger: CronTrigger, now: datetime) -> tuple[datetime |
 
 
 def _utc(dt: datetime) -> str:
-    return dt.astimezone(timezone.utc).isoformat(timespec="seconds")
+    return dt.astimezone(UTC).isoformat(timespec="seconds")
 
 
 def _parse(iso: str) -> datetime | None:
@@ -58,7 +63,7 @@ def _parse(iso: str) -> datetime | None:
         dt = datetime.fromisoformat(str(iso).replace("Z", "+00:00"))
     except ValueError:
         return None
-    return dt if dt.tzinfo else dt.replace(tzinfo=timezone.utc)
+    return dt if dt.tzinfo else dt.replace(tzinfo=UTC)
 
 
 def summarise(conn: sqlite3.Connection, start: datetime, end: datetime, zone: ZoneInfo) -> dict[str, Any]:
@@ -67,12 +72,7 @@ def summarise(conn: sqlite3.Connection, start: datetime, end: datetime, zone: Zo
     notes: list[str] = []
     lo = _utc(start - timedelta(days=1))                 # loose string bound; exact filter below
     try:
-        # the average-quantity screen's outcome: "met" / "not met" / "undecided", NULL when the rule has none
-        rows = conn.execute("SELECT decided_at, line, product, lot, verdict, mean, target, unit, CASE"
-                            " WHEN json_type(payload, '$.average_quantity') IS NOT 'object' THEN NULL"
-                            " WHEN json_extract(payload, '$.average_quantity.passed') = 1 THEN 'met'"
-                            " WHEN json_extract(payload, '$.average_quantity.passed') = 0 THEN 'not met'"
-                            " ELSE 'undecided' END FROM verdicts WHERE decided_at >= ?", (lo,)).fetchall()
+        rows = decided_between(conn, lo, _utc(end + timedelta(days=1)))
     except sqlite3.Error as exc:
         rows = []
         notes.append(f"verdicts not readable: {exc}")
@@ -105,8 +105,7 @@ def summarise(conn: sqlite3.Connection, start: datetime, end: datetime, zone: Zo
     files = {"done": 0, "rejected": 0, "duplicate": 0}
     rejected: list[dict[str, str]] = []
     try:
-        frows = conn.execute("SELECT state, processed_at, path, reason FROM files WHERE processed_at >= ?"
-                             " ORDER BY processed_at", (lo,)).fetchall()
+        frows = processed_since(conn, lo)
     except sqlite3.Error as exc:
         frows = []
         notes.append(f"files not readable: {exc}")
@@ -124,51 +123,84 @@ def summarise(conn: sqlite3.Connection, start: datetime, end: datetime, zone: Zo
             "lines": out_lines, "files": files, "rejected_files": rejected, "notes": notes}
 
 
-def run_digest(dispatcher: "Dispatcher", now: float | None = None) -> bool:
-    """Raise the digest for the latest scheduled time if it is not yet stored and not too late; True if raised."""
-    settings = dispatcher.settings.digest
-    if settings is None:
-        return False
+class DigestProducer:
+    """Raises the digest alert for each scheduled time, once, on ``channels``; its own connection."""
+
+    def __init__(self, db_path: str | Path, settings: DigestSettings, channels: tuple[str, ...], *,
+                 clock: Callable[[], float] = time.time, on_raised: Callable[[], None] | None = None) -> None:
+        self.settings = settings
+        self.channels = channels
+        self._clock = clock
+        self._on_raised = on_raised
+        self._db_path = Path(db_path)
+        self._conn: sqlite3.Connection | None = None
+        self._lock = threading.Lock()
+        self.skipped: set[str] = set()    # due times (UTC ISO) of digests logged as too late to send
+
+    def run(self, now: float | None = None) -> bool:
+        """Raise the digest for the latest scheduled time if not yet stored and not too late; True if raised."""
+        with self._lock:
+            if self._conn is None:
+                self._conn = repo.connect(self._db_path)
+            raised = run_digest(self._conn, self.settings, self.channels,
+                                self._clock() if now is None else now, self.skipped)
+        if raised and self._on_raised is not None:
+            self._on_raised()
+        return raised
+
+    def job(self) -> None:
+        """The scheduled job: never raises (job errors would only reach apscheduler's logger)."""
+        try:
+            self.run()
+        except Exception:
+            log.exception("digest job failed")
+
+    def schedule(self, scheduler: Any) -> None:
+        """The cron job, plus a check soon after start and every minute for a digest missed while down."""
+        scheduler.add_job(self.job, trigger_for(self.settings), id="lotwarden-alerts-digest", replace_existing=True,
+                          coalesce=True, max_instances=1,
+                          misfire_grace_time=int(self.settings.catch_up_hours * 3600) or 1)
+        scheduler.add_job(self.job, "interval", seconds=60, id="lotwarden-alerts-digest-catch-up",
+                          replace_existing=True, coalesce=True, max_instances=1, misfire_grace_time=60,
+                          next_run_time=datetime.now(UTC))
+
+    def close(self) -> None:
+        with self._lock:
+            if self._conn is not None:
+                self._conn.close()
+                self._conn = None
+
+
+def run_digest(conn: sqlite3.Connection, settings: DigestSettings, channels: tuple[str, ...], now: float,
+               skipped: set[str]) -> bool:
+    """Raise the digest for the latest scheduled time if it is not yet stored and not too late; True if raised.
+
+    ``skipped`` remembers the due times already logged as too late (said once per digest).
+    """
     zone = ZoneInfo(settings.timezone)
-    now_dt = datetime.fromtimestamp(dispatcher.clock() if now is None else now, timezone.utc)
+    now_dt = datetime.fromtimestamp(now, UTC)
     due, previous = last_two_fire_times(trigger_for(settings), now_dt)
     if due is None:
         return False
-    if now_dt - due > timedelta(hours=settings.catch_up_hours):
-        skipped = dispatcher.skipped_digests
-        if _utc(due) not in skipped:              # the drain asks every few seconds: say it once per digest
-            skipped.add(_utc(due))
-            log.info("digest for %s skipped: more than %g h late", _utc(due), settings.catch_up_hours)
-        return False
-    conn = dispatcher.conn
     due_key = _utc(due)
-    with dispatcher.lock, dispatcher.write():
-        if conn.execute("SELECT 1 FROM digest_runs WHERE due_at = ?", (due_key,)).fetchone():
+    if now_dt - due > timedelta(hours=settings.catch_up_hours):
+        if due_key not in skipped:              # asked every minute: say it once per digest
+            skipped.add(due_key)
+            log.info("digest for %s skipped: more than %g h late", due_key, settings.catch_up_hours)
+        return False
+    if repo.digest_run_exists(conn, due_key):    # a read first: no write lock taken when nothing is due
+        return False
+    with write_tx(conn):
+        if repo.digest_run_exists(conn, due_key):
             return False
-        last = conn.execute("SELECT MAX(period_end) FROM digest_runs").fetchone()[0]
+        last = repo.last_digest_end(conn)
         start = _parse(last) if last else None
         if start is None or start >= due:
             start = previous if previous is not None else due - timedelta(days=1)
         data = summarise(conn, start, due, zone)
-        alert = Alert(kind="digest", dedup_key=f"digest|{due_key}", created_at=_utc(now_dt), data=data)
-        conn.execute("INSERT INTO digest_runs(due_at, period_start, period_end, created_at, dedup_key)"
-                     " VALUES (?,?,?,?,?)", (due_key, _utc(start), due_key, _utc(now_dt), alert.dedup_key))
-        outbox.enqueue(conn, alert, dispatcher.settings.channels)
+        alert = kinds.digest(due_at=due_key, data=data, at=_utc(now_dt))
+        repo.record_digest_run(conn, due_at=due_key, period_start=_utc(start), period_end=due_key,
+                               created_at=_utc(now_dt), dedup_key=alert.dedup_key)
+        repo.enqueue(conn, alert, channels)
     log.info("digest for %s raised", due_key)
     return True
-
-
-def schedule_digest(dispatcher: "Dispatcher", scheduler: Any) -> None:
-    """Add the digest cron job (the periodic drain also checks for a digest missed while the daemon was down)."""
-    settings = dispatcher.settings.digest
-    assert settings is not None
-
-    def job() -> None:
-        try:
-            if run_digest(dispatcher):
-                dispatcher.drain()
-        except Exception:                                  # job errors would only reach apscheduler's logger
-            log.exception("digest job failed")
-
-    scheduler.add_job(job, trigger_for(settings), id="lotwarden-alerts-digest", replace_existing=True,
-                      coalesce=True, max_instances=1, misfire_grace_time=int(settings.catch_up_hours * 3600) or 1)

@@ -1,12 +1,16 @@
-"""The SMTP edge: one connection per drain, messages sent to explicit envelope recipients, and failures
-sorted into retry-later (connection trouble, 4xx) and give-up (5xx, bad login, untrusted TLS)."""
+"""The SMTP edge: one connection per pass, an overall deadline on every exchange, messages sent to explicit
+envelope recipients, and failures sorted into retry-later (connection trouble, 4xx, deadline) and give-up
+(5xx, bad login, untrusted TLS)."""
 
 from __future__ import annotations
 
+import contextlib
 import smtplib
+import socket
 import ssl
+import threading
 from email.message import EmailMessage
-from typing import NoReturn
+from typing import Any, NoReturn
 
 from monitor.alerts.delivery import GiveUp, RetryLater
 from monitor.alerts.settings import EmailSettings
@@ -40,40 +44,156 @@ def classify(exc: BaseException, secret: str | None) -> NoReturn:
     raise RetryLater(redact(f"{type(exc).__name__}: {exc}", secret)) from None
 
 
-class SmtpSession:
-    """An open, logged-in SMTP connection."""
+DEADLINE_FACTOR = 3.0   # an exchange may take this many times the per-read timeout, all steps together
 
-    def __init__(self, client: smtplib.SMTP, sender: str, secret: str | None) -> None:
+
+def exchange_deadline(settings: EmailSettings) -> float:
+    """Seconds one SMTP exchange (connect, banner, EHLO, STARTTLS, AUTH and one message) may take in all.
+
+    smtplib's ``timeout`` bounds each socket read only: a server that dribbles a byte now and then would
+    keep a session alive for ever (RELIABILITY: smtplib timeouts are per operation).
+    """
+    return DEADLINE_FACTOR * settings.timeout
+
+
+class _Client(smtplib.SMTP):
+    """smtplib.SMTP that keeps hold of its socket from the moment it exists (so a deadline can cut it)."""
+
+    early_sock: Any = None
+    _host: str
+
+    def _get_socket(self, host: str, port: int, timeout: float) -> socket.socket:
+        sock = super()._get_socket(host, port, timeout)  # type: ignore[misc]
+        self.early_sock = sock
+        return sock
+
+
+class _TlsClient(smtplib.SMTP_SSL):
+    early_sock: Any = None
+    _host: str
+
+    def _get_socket(self, host: str, port: int, timeout: float) -> socket.socket:
+        sock = super()._get_socket(host, port, timeout)  # type: ignore[misc]
+        self.early_sock = sock
+        return sock
+
+
+class Deadline:
+    """Cuts the client's socket when an exchange runs past its time (or on ``cut()``), so the blocked
+    smtplib call fails at once instead of waiting for the server."""
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._client: _Client | _TlsClient | None = None
+        self._timer: threading.Timer | None = None
+        self.expired_after: float | None = None     # the deadline that was hit, seconds
+        self.aborted = False
+
+    def attach(self, client: _Client | _TlsClient) -> None:
+        with self._lock:
+            self._client = client
+            if self.aborted:
+                self._shut(client)
+
+    def arm(self, seconds: float) -> None:
+        """Start (or restart) the clock for one exchange."""
+        self.disarm()
+        timer = threading.Timer(seconds, self._expire, args=(seconds,))
+        timer.daemon = True
+        timer.name = "lotwarden-smtp-deadline"
+        with self._lock:
+            self._timer = timer
+        timer.start()
+
+    def disarm(self) -> None:
+        with self._lock:
+            timer, self._timer = self._timer, None
+        if timer is not None:
+            timer.cancel()
+
+    def cut(self) -> None:
+        """Abort now (shutdown): the exchange in flight fails and no new one starts."""
+        with self._lock:
+            self.aborted = True
+            if self._client is not None:
+                self._shut(self._client)
+
+    def _expire(self, seconds: float) -> None:
+        with self._lock:
+            self.expired_after = seconds
+            if self._client is not None:
+                self._shut(self._client)
+
+    @staticmethod
+    def _shut(client: _Client | _TlsClient) -> None:
+        sock = getattr(client, "sock", None) or client.early_sock
+        if sock is None:
+            return
+        with contextlib.suppress(OSError):
+            socket.socket.shutdown(sock, socket.SHUT_RDWR)   # the raw shutdown, also under TLS
+
+    def explain(self, exc: RetryLater) -> RetryLater:
+        """Name the deadline (or the shutdown) as the cause of a failure it provoked."""
+        if self.aborted:
+            return RetryLater("SMTP exchange cut short by shutdown; the alerts stay in the outbox")
+        if self.expired_after is not None:
+            return RetryLater(f"SMTP exchange took longer than its {self.expired_after:g} s deadline "
+                              f"(server too slow or not answering): {exc}")
+        return exc
+
+
+class SmtpSession:
+    """An open, logged-in SMTP connection; each message is one exchange with its own deadline."""
+
+    def __init__(self, client: _Client | _TlsClient, sender: str, secret: str | None,
+                 deadline: Deadline, seconds: float) -> None:
         self._client = client
         self._sender = sender
         self._secret = secret
+        self._deadline = deadline
+        self._seconds = seconds
 
     def send(self, msg: EmailMessage, recipients: tuple[str, ...]) -> dict[str, tuple[int, bytes]]:
         """Send ``msg`` to exactly ``recipients``; returns the refused ones (others got it)."""
         try:
-            return self._client.send_message(msg, from_addr=self._sender, to_addrs=list(recipients))
+            try:
+                return self._client.send_message(msg, from_addr=self._sender, to_addrs=list(recipients))
+            finally:
+                self._deadline.arm(self._seconds)       # the next message: a new exchange, a new deadline
         except (smtplib.SMTPException, OSError) as exc:
-            if isinstance(exc, smtplib.SMTPResponseException) and not isinstance(exc, smtplib.SMTPServerDisconnected):
-                try:
+            if self._deadline.expired_after is None and not self._deadline.aborted and \
+                    isinstance(exc, smtplib.SMTPResponseException) and \
+                    not isinstance(exc, smtplib.SMTPServerDisconnected):
+                with contextlib.suppress(smtplib.SMTPException, OSError):
                     self._client.rset()        # keep the connection usable for the next message
-                except (smtplib.SMTPException, OSError):
-                    pass
-            classify(exc, self._secret)
+            try:
+                classify(exc, self._secret)
+            except RetryLater as retry:
+                raise self._deadline.explain(retry) from None
 
     def close(self) -> None:
+        """QUIT (within what is left of the deadline), then let go of the deadline."""
         try:
-            self._client.quit()
+            if self._deadline.expired_after is None and not self._deadline.aborted:
+                self._client.quit()
+            else:
+                self._client.close()
         except (smtplib.SMTPException, OSError):
             self._client.close()
+        finally:
+            self._deadline.disarm()
 
 
 class EmailChannel:
-    """Opens SMTP sessions (plain, STARTTLS or implicit TLS) and logs in if configured."""
+    """Opens SMTP sessions (plain, STARTTLS or implicit TLS) and logs in if configured, under a deadline."""
 
     name = "email"
 
     def __init__(self, settings: EmailSettings) -> None:
         self.settings = settings
+        self._lock = threading.Lock()
+        self._current: Deadline | None = None
+        self._aborted = False
 
     def __repr__(self) -> str:
         s = self.settings
@@ -82,27 +202,52 @@ class EmailChannel:
     def _tls_context(self) -> ssl.SSLContext:
         return ssl.create_default_context(cafile=str(self.settings.ca_file) if self.settings.ca_file else None)
 
+    def abort(self) -> None:
+        """Cut the exchange in flight and open no more sessions (shutdown)."""
+        with self._lock:
+            self._aborted = True
+            current = self._current
+        if current is not None:
+            current.cut()
+
     def connect(self) -> SmtpSession:
-        """Connect, say EHLO, upgrade to TLS and log in as configured; raises RetryLater or GiveUp."""
+        """Connect, say EHLO, upgrade to TLS and log in as configured; raises RetryLater or GiveUp.
+
+        The deadline starts here and covers everything up to the end of the first message.
+        """
         s = self.settings
         try:
             password = s.read_password()
         except ConfigError as exc:
             raise GiveUp(str(exc)) from None
-        client: smtplib.SMTP | None = None
+        deadline = Deadline()
+        with self._lock:
+            if self._aborted:
+                raise RetryLater("shutting down; the alerts stay in the outbox")
+            self._current = deadline
+        seconds = exchange_deadline(s)
+        deadline.arm(seconds)
+        client: _Client | _TlsClient | None = None
         try:
             if s.security == "tls":
-                client = smtplib.SMTP_SSL(s.host, s.port, timeout=s.timeout, context=self._tls_context())
+                client = _TlsClient(timeout=s.timeout, context=self._tls_context())
             else:
-                client = smtplib.SMTP(s.host, s.port, timeout=s.timeout)
+                client = _Client(timeout=s.timeout)
+            client._host = s.host       # what SMTP(host) would set: the name TLS checks the certificate for
+            deadline.attach(client)
+            client.connect(s.host, s.port)
             client.ehlo()
             if s.security == "starttls":
                 client.starttls(context=self._tls_context())
                 client.ehlo()
             if s.username is not None:
                 client.login(s.username, password or "")
-            return SmtpSession(client, s.sender, password)
+            return SmtpSession(client, s.sender, password, deadline, seconds)
         except (smtplib.SMTPException, OSError) as exc:
+            deadline.disarm()
             if client is not None:
                 client.close()
-            classify(exc, password)
+            try:
+                classify(exc, password)
+            except RetryLater as retry:
+                raise deadline.explain(retry) from None

@@ -1,22 +1,26 @@
-"""E-mail delivery from the outbox: plans batches (grouping, cap, reminders), sends them, books the result."""
+"""The e-mail channel: plans batches (grouping, cap, reminders), sends them over SMTP, reports each batch."""
 
 from __future__ import annotations
 
-import json
 import logging
-from typing import TYPE_CHECKING
+import sqlite3
+from collections.abc import Callable, Generator, Sequence
+from functools import partial
+from pathlib import Path
 
-from monitor.alerts import outbox
 from monitor.alerts.alert import Alert
+from monitor.alerts.channel import Due, Report
 from monitor.alerts.compose import build_message
-from monitor.alerts.delivery import GiveUp, RetryLater, backoff_seconds
+from monitor.alerts.delivery import GiveUp, RetryLater
 from monitor.alerts.email_channel import EmailChannel, SmtpSession
 from monitor.alerts.grouping import HOUR, Batch, Pacing, PendingRow, plan_batches
-
-if TYPE_CHECKING:
-    from monitor.alerts.dispatch import Dispatcher
+from monitor.alerts.settings import AlertSettings
+from monitor.alerts.templates import TemplateSet
+from monitor.state import outbox as repo
 
 log = logging.getLogger("monitor.alerts")
+
+TemplatesFn = Callable[[], tuple[TemplateSet, TemplateSet]]
 
 
 def previous_verdict(alert: Alert) -> str | None:
@@ -28,122 +32,98 @@ def previous_verdict(alert: Alert) -> str | None:
     return verdict if isinstance(verdict, str) and verdict else None
 
 
-class EmailDispatch:
-    """The e-mail side of a Dispatcher."""
+class EmailDelivery:
+    """The e-mail channel behind the common interface; grouping and pacing are its own business.
 
-    def __init__(self, dispatcher: "Dispatcher") -> None:
-        self.d = dispatcher
-        settings = dispatcher.settings
+    It reads its pacing state (messages per recipient, lots already told) through its own connection to
+    the state database; what it books about a sent message travels with the report.
+    """
+
+    name = "email"
+
+    def __init__(self, settings: AlertSettings, db_path: Path, templates: TemplatesFn) -> None:
         assert settings.email is not None
         self.email = settings.email
-        self.channel = EmailChannel(settings.email)
+        self.retry_first_seconds = self.email.retry_first_seconds
+        self.retry_max_seconds = self.email.retry_max_seconds
+        self.smtp = EmailChannel(settings.email)
         self.pacing = Pacing(window=settings.group_window_seconds, group_max=settings.group_max,
                              hourly_cap=settings.hourly_cap, reminder=settings.reminder_minutes * 60.0)
+        self._templates = templates
+        self._db_path = Path(db_path)
+        self._conn: sqlite3.Connection | None = None
         self.sent_messages = 0
 
     def recipients_for(self, alert: Alert) -> tuple[str, ...]:
         """The alert's recipients (a verdict-changed alert also by the kind of the verdict it replaces)."""
         return self.email.recipients_for(alert.kind, alert.line, alert.product, previous_verdict(alert))
 
-    def drain(self, now: float, *, flush: bool = False) -> int:
-        conn = self.d.conn
-        rows = outbox.due_rows(conn, "email", limit=5000)
-        if not rows or max(r[3] for r in rows) > now:      # a retry is backing off: everything behind it waits
-            return 0
-        pending = [PendingRow(rid, alert, attempts) for rid, alert, attempts, _ in rows]
-        plan = plan_batches(pending, now=now, pacing=self.pacing, recipients_for=self.recipients_for,
-                            sends=self._sends(now), last_notified=self._last_notified(now), flush=flush)
-        if plan.suppressed:
-            with self.d.write():
-                for rid, reason in plan.suppressed:
-                    outbox.mark_suppressed(conn, rid, "email", reason)
+    def abort(self) -> None:
+        self.smtp.abort()
+
+    def close(self) -> None:
+        if self._conn is not None:
+            self._conn.close()
+            self._conn = None
+
+    def _reader(self) -> sqlite3.Connection:
+        if self._conn is None:
+            self._conn = repo.connect(self._db_path)
+        return self._conn
+
+    def deliver(self, due: Sequence[Due], now: float, *, flush: bool) -> Generator[Report, None, None]:
+        conn = self._reader()
+        rows = [PendingRow(d.alert_id, d.alert, d.attempts) for d in due]
+        plan = plan_batches(rows, now=now, pacing=self.pacing, recipients_for=self.recipients_for,
+                            sends=repo.recipient_sends(conn, now - 3 * HOUR),
+                            last_notified=repo.last_lot_notices(conn, now - self.pacing.reminder), flush=flush)
+        for rid, reason in plan.suppressed:
+            yield Report((rid,), "suppressed", reason)
         if not plan.batches:
-            return 0
+            return
         try:
-            session = self.channel.connect()
+            session = self.smtp.connect()
         except RetryLater as exc:
-            self._postpone(plan.batches[0], now, exc)
-            return 0
+            yield Report(_ids(plan.batches[0]), "retry", str(exc))
+            return
         except GiveUp as exc:
             for batch in plan.batches:
-                for r in batch.rows:
-                    self.d.give_up(r.alert_id, r.alert, "email", str(exc), now)
-            return 0
-        done = 0
+                yield Report(_ids(batch), "failed", str(exc))
+            return
         try:
             for batch in plan.batches:
-                outcome = self._send(session, batch, now)
-                if outcome is None:
-                    break                                    # server unavailable: stop, keep the order
-                done += outcome
+                report = self._send(session, batch, now)
+                yield report
+                if report.status == "retry":
+                    return                                  # server unavailable: stop, keep the order
         finally:
             session.close()
-        return done
 
-    def _postpone(self, batch: Batch, now: float, exc: Exception) -> None:
-        delay = backoff_seconds(max(r.attempts for r in batch.rows), self.email.retry_first_seconds,
-                                self.email.retry_max_seconds, self.d.rng)
-        with self.d.write():
-            for r in batch.rows:
-                outbox.mark_retry(self.d.conn, r.alert_id, "email", now + delay, str(exc))
-        log.warning("e-mail of %d alert(s) postponed %.1f s: %s", len(batch.rows), delay, exc)
-
-    def _send(self, session: SmtpSession, batch: Batch, now: float) -> int | None:
-        templates, shipped = self.d.templates()
+    def _send(self, session: SmtpSession, batch: Batch, now: float) -> Report:
+        templates, shipped = self._templates()
         try:
             msg = build_message(list(batch.alerts), sender=self.email.sender, recipients=batch.recipients,
                                 now=now, folded=batch.folded, templates=templates, shipped=shipped)
-        except Exception as exc:      # never let one unbuildable alert block the channel: dead + reported
+        except Exception as exc:      # never let one unbuildable alert block the channel: failed + reported
             log.exception("e-mail for %d alert(s) could not be built", len(batch.rows))
-            for r in batch.rows:
-                self.d.give_up(r.alert_id, r.alert, "email", f"message could not be built: {exc!r}"[:300], now)
-            return 0
+            return Report(_ids(batch), "failed", f"message could not be built: {exc!r}"[:300])
         try:
             refused = session.send(msg, batch.recipients)
         except RetryLater as exc:
-            self._postpone(batch, now, exc)
-            return None
+            return Report(_ids(batch), "retry", str(exc))
         except GiveUp as exc:
-            for r in batch.rows:
-                self.d.give_up(r.alert_id, r.alert, "email", str(exc), now)
-            return 0
-        self._book(batch, msg["Message-ID"], now, refused)
+            return Report(_ids(batch), "failed", str(exc))
         self.sent_messages += 1
-        return len(batch.rows)
-
-    def _book(self, batch: Batch, mid: str, now: float, refused: dict) -> None:
-        """Mark the batch sent right after the send (a crash in between repeats only this message)."""
-        from monitor.alerts.dispatch import iso_utc
-
-        conn = self.d.conn
-        with self.d.write():
-            for r in batch.rows:
-                outbox.mark_sent(conn, r.alert_id, "email", iso_utc(now))
-                if r.alert.kind == "hold":
-                    conn.execute("INSERT INTO email_lot_notices(line, product, lot, notified_at) VALUES (?,?,?,?)",
-                                 (r.alert.line, r.alert.product, r.alert.lot, now))
-            conn.execute("INSERT INTO email_messages(message_id, sent_at, recipients, alert_ids, folded)"
-                         " VALUES (?,?,?,?,?)", (mid, now, json.dumps(list(batch.recipients)),
-                                                 json.dumps([r.alert_id for r in batch.rows]), int(batch.folded)))
-            conn.executemany("INSERT INTO email_recipient_sends(recipient, sent_at) VALUES (?,?)",
-                             [(rc, now) for rc in batch.recipients])
-            if refused:
-                note = f"refused by server for: {', '.join(sorted(refused))}"
-                for r in batch.rows:
-                    conn.execute("UPDATE deliveries SET last_error=? WHERE alert_id=? AND channel='email'",
-                                 (note[:500], r.alert_id))
+        mid = str(msg["Message-ID"])
+        note = ""
         if refused:
+            note = f"refused by server for: {', '.join(sorted(refused))}"
             log.warning("message %s: some recipients refused: %s", mid, sorted(refused))
+        held = [(r.alert.line, r.alert.product, r.alert.lot) for r in batch.rows if r.alert.kind == "hold"]
+        booking = partial(repo.record_email, message_id=mid, sent_at=now, recipients=tuple(batch.recipients),
+                          alert_ids=[r.alert_id for r in batch.rows], folded=bool(batch.folded), held_lots=held)
+        return Report(_ids(batch), "delivered", note, booking=booking)
 
-    def _sends(self, now: float) -> dict[str, list[float]]:
-        out: dict[str, list[float]] = {}
-        for rc, t in self.d.conn.execute("SELECT recipient, sent_at FROM email_recipient_sends WHERE sent_at > ?",
-                                         (now - 3 * HOUR,)):
-            out.setdefault(rc, []).append(t)
-        return out
 
-    def _last_notified(self, now: float) -> dict[tuple[str, str, str], float]:
-        rows = self.d.conn.execute(
-            "SELECT line, product, lot, MAX(notified_at) FROM email_lot_notices WHERE notified_at > ?"
-            " GROUP BY line, product, lot", (now - self.pacing.reminder,))
-        return {(ln, p, lot): t for ln, p, lot, t in rows}
+def _ids(batch: Batch) -> tuple[int, ...]:
+    return tuple(r.alert_id for r in batch.rows)

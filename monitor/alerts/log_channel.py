@@ -5,16 +5,19 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
+from monitor.alerts.channel import OneAtATime
 from monitor.alerts.delivery import RetryLater
 
 
-class LogChannel:
+class LogChannel(OneAtATime):
     """Appends alert JSON lines to ``path`` (its folder is created if missing)."""
 
     name = "log"
 
-    def __init__(self, path: Path) -> None:
+    def __init__(self, path: Path, retry_max_seconds: float = 60.0) -> None:
         self.path = Path(path)
+        self.retry_first_seconds = 1.0
+        self.retry_max_seconds = retry_max_seconds
 
     def send(self, payload: str) -> None:
         """Append ``payload`` (one ``Alert.dumps()`` string) plus a newline; durable when this returns.

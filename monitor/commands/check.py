@@ -1,5 +1,8 @@
 """`lotwarden check`: judge every lot in one or more export files and print a table or JSON.
 
+Files are taken in the order given (a folder: its export files in name order), the way the daemon takes
+them, and what is still open after the last is closed: each lot printed is the lot the daemon would hold
+after the same files (``monitor.lotmodel``), with ``runs`` saying how many separate runs of rows made it.
 Exit 0 when every lot passes, 1 when any lot is `hold` or `review`, 2 for usage, rule or unreadable-file
 errors (each named on stderr; the lots of the readable files are still printed). When stderr is a terminal,
 a status line there counts files read and lots judged (never when stderr is a file or pipe).
@@ -17,6 +20,8 @@ from typing import Any, TextIO
 
 from monitor.engine import SCREENING_NOTE
 from monitor.errors import ConfigError, ExportError, LotwardenError
+from monitor.keys import CONFIG
+from monitor.keyschema import Invalid, convert
 from monitor.lot import Verdict, excluded_counts
 from monitor.rulebook import ALTERNATIVES, NormalityRule, Rule, load_rules, match_rule
 from monitor.tomlfile import read_toml
@@ -34,10 +39,12 @@ def register(sub: argparse._SubParsersAction) -> argparse.ArgumentParser:
         "rule files, or override the matching rule's keys when --rules is also given.",
         epilog=CAUTION)
     p.add_argument("paths", nargs="+", metavar="PATH",
-                   help="export files (CSV, weigher exports, lot summaries), or folders of them")
+                   help="export files (CSV, weigher exports, lot summaries), or folders of them; taken in the "
+                        "order given (a folder's files in name order), as the daemon would take them")
     p.add_argument("--rules", metavar="DIR", help="folder of rule files (*.toml)")
     p.add_argument("--config", metavar="FILE",
-                   help=f"daemon config whose [profiles.*] tell how to read exports (default: {DEFAULT_CONFIG} if present)")
+                   help=f"daemon config whose [profiles.*] tell how to read exports "
+                        f"(default: {DEFAULT_CONFIG} if present)")
     p.add_argument("--target", type=float, help="target mean (ad-hoc rule)")
     p.add_argument("--unit", help="unit of --target (ad-hoc; default: the unit the values carry, if any)")
     p.add_argument("--alternative", choices=ALTERNATIVES,
@@ -106,7 +113,12 @@ def _rules(args: argparse.Namespace, config: dict[str, Any] | None, config_path:
         return [Rule.adhoc(normality=normality, **overrides)]
     elif config is not None and isinstance(config.get("rules_dir"), str):
         assert config_path is not None
-        rules = load_rules((config_path.parent / config["rules_dir"]).resolve())
+        try:   # the key's declaration decides `~` and relative paths, as for the daemon
+            rules_dir = convert(CONFIG["rules_dir"], config["rules_dir"], config_path.resolve().parent)
+        except Invalid as exc:
+            raise ConfigError(f"rules_dir = {config['rules_dir']!r} — {exc.text}", path=config_path,
+                              key="rules_dir") from None
+        rules = load_rules(rules_dir)
     elif DEFAULT_RULES.is_dir():
         rules = load_rules(DEFAULT_RULES)
     else:
@@ -182,7 +194,7 @@ def judge(paths: list[str], rules: list[Rule], profiles: list,
     from monitor.assemble import assemble_lots
     from monitor.engine import evaluate_many
     from monitor.ingest import profile_for, read_export
-    from monitor.lot import unjudged
+    from monitor.lot import no_rule_reason, unjudged
 
     show = progress or Progress(sys.stderr)
     exports, errors = [], []
@@ -203,15 +215,16 @@ def judge(paths: list[str], rules: list[Rule], profiles: list,
         except OSError as exc:
             errors.append(f"{path}: cannot read: {exc.strerror or exc}")
         show.update(files=(done, len(paths)))
-    single = rules[0] if len(rules) == 1 and rules[0].name == "ad-hoc" else None
-    assembled = assemble_lots(exports, (lambda p: single) if single else (lambda p: match_rule(rules, p)))
+    # every rule is matched by its `products` (the command line's ad-hoc rule names "*": every product)
+    assembled = assemble_lots(exports, lambda p: match_rule(rules, p))
     verdicts: list[Verdict | None] = [None] * len(assembled)
     by_rule: dict[int, list[int]] = {}
     judged = 0
     for i, a in enumerate(assembled):
         if a.problem is not None or a.rule is None:
             r = a.rule
-            verdicts[i] = unjudged(a.data, a.problem or "no rule", rule_name=r.name if r else "",
+            reason = a.problem or no_rule_reason(a.data.key.product)
+            verdicts[i] = unjudged(a.data, reason, rule_name=r.name if r else "",
                                    rule_version=r.version if r else "", target=r.target if r else float("nan"),
                                    alternative=r.alternative if r else "", alpha=r.alpha if r else float("nan"))
             judged += 1
@@ -223,8 +236,8 @@ def judge(paths: list[str], rules: list[Rule], profiles: list,
         assert rule is not None
         for c in range(0, len(idxs), CHUNK):
             part = idxs[c:c + CHUNK]
-            for i, v in zip(part, evaluate_many([assembled[i].data for i in part], rule)):
-                verdicts[i] = v
+            for i, v in zip(part, evaluate_many([assembled[i].data for i in part], rule), strict=True):
+                verdicts[i] = v.with_runs(assembled[i].data.runs)
             judged += len(part)
             show.update(lots=(judged, len(assembled)))
     show.update(force=True)
@@ -297,6 +310,8 @@ def _notes(v: Verdict) -> str:
         counts = excluded_counts(v.excluded_by, v.excluded)
         why = ", ".join(f"{k} {_EXCLUDED_WORDS.get(r, r)}" for r, k in counts.items() if k)
         out.append(f"{v.excluded} excluded ({why})")
+    if v.runs is not None and v.runs >= 2:
+        out.append(f"{v.runs} runs (other lots' rows came in between; judged over all its values)")
     return "; ".join(out) or "-"
 
 
@@ -321,10 +336,10 @@ def render_table(verdicts: list[Verdict]) -> str:
                      target, v.test or "-", _fmt(v.statistic), _df_text(v.df), p_vs_alpha(v.p_value, v.alpha),
                      ci, v.verdict.upper(), _notes(v)])
     widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h) for i, h in enumerate(head)]
-    out = ["  ".join(h.ljust(w) for h, w in zip(head, widths)).rstrip(),
+    out = ["  ".join(h.ljust(w) for h, w in zip(head, widths, strict=True)).rstrip(),
            "  ".join("-" * w for w in widths)]
-    for r, v in zip(rows, verdicts):
-        out.append("  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip())
+    for r, v in zip(rows, verdicts, strict=True):
+        out.append("  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)).rstrip())
         out.append("      " + v.reason)
     counts = {k: sum(1 for v in verdicts if v.verdict == k) for k in ("pass", "hold", "review")}
     out.append("")
@@ -338,13 +353,21 @@ def plural(count: int, word: str) -> str:
     return f"{count} {word if count == 1 else word + 's'}"
 
 
+def _export_files(folder: Path, profiles: list) -> list[Path]:
+    """The export files of ``folder`` in name order, chosen by the one file-name filter the daemon uses
+    (marker and reason files, hidden and temporary names left out; the profiles' marker suffixes too)."""
+    from monitor.names import export_files
+
+    return export_files(folder, [p.marker_suffix for p in profiles if p.marker_suffix])
+
+
 def run(args: argparse.Namespace) -> int:
     profiles, config, config_path = _load_profiles(args)
     rules = _rules(args, config, config_path)
     paths: list[str] = []
-    for p in args.paths:   # a folder stands for the export files in it (hidden names left out)
+    for p in args.paths:   # in the order given; a folder stands for its export files, in name order
         if Path(p).is_dir():
-            paths += [str(f) for f in sorted(Path(p).iterdir()) if f.is_file() and not f.name.startswith(".")]
+            paths += [str(f) for f in _export_files(Path(p), profiles)]
         else:
             paths.append(p)
     missing = [p for p in paths if not Path(p).is_file()]

@@ -9,11 +9,11 @@ from pathlib import Path
 def register(sub: argparse._SubParsersAction) -> argparse.ArgumentParser:
     p = sub.add_parser(
         "demo", help="run the daemon on the sample exports in a temporary folder and print what happens",
-        description="Copy sample_feeds/ and rules/ into a temporary folder, start the daemon on it (alerts to "
-                    "a JSON-lines log and to an e-mail sink on 127.0.0.1), drop the sample exports as a "
-                    "checkweigher would and print each event, then a table of lots and verdicts. Needs no "
-                    "network. The tool screens; net-quantity compliance is decided under local "
-                    "weights-and-measures law by the competent authority.")
+        description="Copy the sample exports and rules shipped with lotwarden into a temporary folder, start "
+                    "the daemon on it (alerts to a JSON-lines log and to an e-mail sink on 127.0.0.1), drop "
+                    "the sample exports as a checkweigher would and print each event, then a table of lots and "
+                    "verdicts. Needs no network. The tool screens; net-quantity compliance is decided under "
+                    "local weights-and-measures law by the competent authority.")
     p.add_argument("--workdir", metavar="DIR", type=Path, default=None,
                    help="folder for the demo tree (default: a new temporary folder, kept afterwards)")
     return p

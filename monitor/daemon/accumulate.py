@@ -9,11 +9,12 @@ windows of ``CHUNK_ROWS``; a lot is read back in chunks (or taken from ``judge.R
 
 from __future__ import annotations
 
-import sqlite3
+import dataclasses
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime
 from itertools import repeat
-from typing import Any, Callable, Sequence
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -21,9 +22,11 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from monitor.daemon import judge, lots, rejudge
-from monitor.daemon.store import Store, inserted_id, utc_iso
 from monitor.lot import LotKey, Verdict
 from monitor.rulebook import Rule, match_rule
+from monitor.state import audit
+from monitor.state import lots as lot_store
+from monitor.state.database import Connection, utc_iso
 
 
 @dataclass(frozen=True)
@@ -51,7 +54,7 @@ def lot_name(key: LotKey) -> str:
     return "/".join(x or "-" for x in (key.line, key.product, key.lot))
 
 
-def add_values(conn: sqlite3.Connection, how: Judging, file_id: int, export: Any, density: float | None,
+def add_values(conn: Connection, how: Judging, file_id: int, export: Any, density: float | None,
                now: datetime, tally: Tally, after_first_insert: Callable[[], None] = lambda: None, *,
                path: str = "") -> int:
     """Append an export's rows to their lots and close / judge lots as the rows and markers say; return
@@ -71,7 +74,7 @@ def add_values(conn: sqlite3.Connection, how: Judging, file_id: int, export: Any
     src = (rows["source_line"].to_numpy(dtype=np.int64) if "source_line" in rows.columns
            else np.arange(1, n + 1, dtype=np.int64))
     cols = RowColumns(rows, src, n)
-    open_rows = conn.execute("SELECT line, product, lot FROM lots WHERE state = 'open' ORDER BY id").fetchall()
+    open_rows = lot_store.open_lot_names(conn)
     plan = lots.plan_file({r[0]: LotKey(*r) for r in open_rows}, lots.runs_of_codes(codes, keys), src, markers)
     del codes
     last_segment = max((i for i, step in enumerate(plan.steps) if isinstance(step, lots.Segment)), default=-1)
@@ -94,8 +97,6 @@ def add_values(conn: sqlite3.Connection, how: Judging, file_id: int, export: Any
 
 
 CHUNK_ROWS = 50_000
-INSERT_VALUE = ("INSERT INTO lot_values(lot_id, line, product, lot, seq, value, unit, density, head, timestamp,"
-                " file_id, source_line, excluded) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)")
 
 
 class RowColumns:
@@ -179,10 +180,10 @@ def arrow_text(df: pd.DataFrame, col: str, n: int, default: str | None) -> pa.Ar
     return arr
 
 
-def insert_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, seq0: int, cols: RowColumns, start: int,
+def insert_values(conn: Connection, lot_id: int, key: LotKey, seq0: int, cols: RowColumns, start: int,
                   stop: int, density: float | None, file_id: int, recent: judge.RecentValues | None = None,
                   path: str = "") -> None:
-    """Insert rows ``start:stop`` (one lot) with seq from ``seq0``: one executemany per window they touch;
+    """Insert rows ``start:stop`` (one lot) with seq from ``seq0``: one batch insert per window they touch;
     ``recent`` (if given) keeps them for judging the lot without reading it back."""
     a = start
     while a < stop:
@@ -190,7 +191,7 @@ def insert_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, seq0: int,
         b = min(stop, w1)
         i, j = a - w0, b - w0
         seq = seq0 + (a - start)
-        conn.executemany(INSERT_VALUE, zip(
+        lot_store.insert_values(conn, zip(
             repeat(lot_id), repeat(key.line), repeat(key.product), repeat(key.lot), range(seq, seq + (b - a)),
             values[i:j], units[i:j], repeat(density), heads[i:j], stamps[i:j], repeat(file_id), src[i:j],
             excluded[i:j]))
@@ -239,41 +240,38 @@ def text_codes(df: pd.DataFrame, col: str, n: int) -> tuple[np.ndarray | None, l
     return codes.to_numpy(zero_copy_only=False).astype(np.int64), [str(x) for x in distinct.to_pylist()]
 
 
-def open_lot(conn: sqlite3.Connection, key: LotKey, at: str, ts: float, count: int, file_id: int) -> tuple[int, int]:
+def open_lot(conn: Connection, key: LotKey, at: str, ts: float, count: int, file_id: int) -> tuple[int, int]:
     """Make ``key`` an open lot (creating or reopening it) and add ``count`` values; return (id, first seq)."""
-    row = conn.execute("SELECT id, state, n FROM lots WHERE line=? AND product=? AND lot=?",
-                       (key.line, key.product, key.lot)).fetchone()
+    row = lot_store.find(conn, key.line, key.product, key.lot)
     if row is None:
-        cur = conn.execute("INSERT INTO lots(line, product, lot, state, opened_at, last_value_at, last_value_ts, n)"
-                           " VALUES (?,?,?,'open',?,?,?,?)", (key.line, key.product, key.lot, at, at, ts, count))
-        return inserted_id(cur), 1  # the file-taken audit record names the lots it opened
+        # the file-taken audit record names the lots it opened
+        return lot_store.insert_open(conn, key.line, key.product, key.lot, at=at, ts=ts, n=count), 1
     lot_id, state, n = row
     if state == "closed":
-        conn.execute("UPDATE lots SET state='open', closed_at=NULL, close_reason=NULL, late_values=late_values+?"
-                     " WHERE id=?", (count, lot_id))
-        Store.audit(conn, at, "lot-reopened", file_id=file_id, line=key.line, product=key.product, lot=key.lot,
+        lot_store.reopen(conn, lot_id, count)
+        audit.append(conn, at, "lot-reopened", file_id=file_id, line=key.line, product=key.product, lot=key.lot,
                     detail={"late_values": count, "values_before": n,
                             "policy": "late values reopen the lot; it is judged again over all its values"})
-    conn.execute("UPDATE lots SET n = n + ?, last_value_at = ?, last_value_ts = ? WHERE id = ?",
-                 (count, at, ts, lot_id))
+    lot_store.add_rows(conn, lot_id, count, at=at, ts=ts)
     return int(lot_id), int(n) + 1
 
 
-def close_lot(conn: sqlite3.Connection, how: Judging, key: LotKey, reason: str, at: str, file_id: int | None,
+def close_lot(conn: Connection, how: Judging, key: LotKey, reason: str, at: str, file_id: int | None,
               tally: Tally) -> Verdict | None:
     """Close an open lot and judge it: verdict row, audit and alert on ``conn``. None if it was not open."""
-    row = conn.execute("SELECT id, n FROM lots WHERE line=? AND product=? AND lot=? AND state='open'",
-                       (key.line, key.product, key.lot)).fetchone()
+    row = lot_store.find_open(conn, key.line, key.product, key.lot)
     if row is None:
         return None
-    lot_id, n = int(row[0]), int(row[1])
-    conn.execute("UPDATE lots SET state='closed', closed_at=?, close_reason=?, times_closed=times_closed+1"
-                 " WHERE id=?", (at, reason, lot_id))
+    lot_id, n = row.id, row.n
+    lot_store.close(conn, lot_id, at=at, reason=reason)
     # the verdict's audit record (close_reason, file) is the closing's record
     rule = match_rule(list(how.rules), key.product)
     recent = how.recent.take(lot_id, n) if how.recent is not None else None
     data, problem = (recent.lot_data(key, rule) if recent is not None
                      else judge.load_lot_values(conn, lot_id, key, rule))
+    closed = lot_store.get(conn, lot_id)
+    if closed is not None:   # each run of the lot's rows ended in one closing: runs = times closed
+        data = dataclasses.replace(data, runs=closed.times_closed)
     verdict = judge.judge(data, rule, problem, how.evaluate)
     previous = rejudge.previous_verdict(conn, lot_id, key)   # judged before: late values reopened the lot
     why = rejudge.why_reopened(conn, lot_id, previous.lot_rows) if previous is not None else ""
@@ -285,7 +283,7 @@ def close_lot(conn: sqlite3.Connection, how: Judging, key: LotKey, reason: str, 
     return verdict
 
 
-def add_summaries(conn: sqlite3.Connection, how: Judging, file_id: int, path: str, export: Any,
+def add_summaries(conn: Connection, how: Judging, file_id: int, path: str, export: Any,
                   density: float | None, at: str, tally: Tally) -> int:
     """Each summary row is a lot of its own, judged at once from n / mean / sd; a record the reader found
     unusable (its ``problem`` column says why; no column = none) is a `review` naming the problem."""
@@ -300,26 +298,26 @@ def add_summaries(conn: sqlite3.Connection, how: Judging, file_id: int, path: st
     sds = s["sd"].to_numpy(dtype=np.float64).tolist()
     for i in range(n):
         key = LotKey(line_c[i], prod_c[i], lot_c[i])
-        cur = conn.execute("INSERT INTO lot_summaries(file_id, source_line, line, product, lot, n, mean, sd, unit,"
-                           " density, timestamp, problem) VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
-                           (file_id, src[i], key.line, key.product, key.lot, ns[i], means[i], sds[i], unit_c[i],
-                            density, time_c[i], problem_c[i]))
+        summary_id = lot_store.insert_summary(conn, file_id=file_id, source_line=src[i], line=key.line,
+                                             product=key.product, lot=key.lot, n=ns[i], mean=means[i], sd=sds[i],
+                                             unit=unit_c[i], density=density, timestamp=time_c[i],
+                                             problem=problem_c[i])
         rule = match_rule(list(how.rules), key.product)
         data, problem = judge.summary_lot(key, ns[i], means[i], sds[i], unit_c[i], density, rule, path)
         verdict = (judge.with_lot_facts(judge.unusable_summary(data, rule, problem_c[i]), data) if problem_c[i]
                    else judge.judge(data, rule, problem, how.evaluate))
         alerts = judge.record_verdict(conn, verdict, rule, data, at=at, channels=how.channels,
-                                      summary_id=inserted_id(cur), close_reason="summary", file_id=file_id)
+                                      summary_id=summary_id, close_reason="summary", file_id=file_id)
         tally.verdicts.append(verdict)
         tally.alerts.extend(a.dedup_key for a in alerts)
     return n
 
 
-def close_idle_lots(conn: sqlite3.Connection, how: Judging, now: datetime,
+def close_idle_lots(conn: Connection, how: Judging, now: datetime,
                     idle_seconds_for: Callable[[LotKey], float]) -> list[Verdict]:
     """Close and judge every open lot idle at ``now``."""
     at, ts = utc_iso(now), now.timestamp()
-    rows = conn.execute("SELECT line, product, lot, last_value_ts FROM lots WHERE state='open' ORDER BY id").fetchall()
+    rows = lot_store.open_lots(conn)
     tally = Tally()
     for key in lots.idle_lots([(LotKey(r[0], r[1], r[2]), r[3]) for r in rows], ts, idle_seconds_for):
         close_lot(conn, how, key, lots.IDLE, at, None, tally)

@@ -17,14 +17,17 @@ import tempfile
 import threading
 import time
 import tomllib
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, TextIO
+from typing import Any, TextIO
 
 from monitor.daemon.service import Daemon
 from monitor.polling import wait_until
+from monitor.resources import demo_feeds_dir, demo_rules_dir, require_dir, sample_config_path
 
 SETTLE_SECONDS = 0.5
+START_SECONDS = 60.0   # a first start after install compiles and imports numpy, scipy, pandas, matplotlib
 DISCLAIMER = ("The tool screens; net-quantity compliance is decided under local weights-and-measures law by "
               "the competent authority.")
 PATH_KEYS = ("path", "file", "folder", "dir", "template", "templates")
@@ -32,17 +35,16 @@ PATH_KEYS = ("path", "file", "folder", "dir", "template", "templates")
 
 # --------------------------------------------------------------------------------------------- finding inputs
 def find_inputs(start: Path | None = None) -> tuple[Path, Path, Path | None]:
-    """(sample_feeds, rules, repo config or None): from the current folder if it has both, else the repo."""
-    candidates = [Path(start or Path.cwd()), Path(__file__).resolve().parent.parent.parent]
-    for base in candidates:
-        feeds, rules = base / "sample_feeds", base / "rules"
-        if feeds.is_dir() and rules.is_dir():
-            cfg = base / "config" / "lotwarden.toml"
-            return feeds, rules, (cfg if cfg.is_file() else None)
-    from monitor.errors import ConfigError
-
-    raise ConfigError("cannot find sample_feeds/ and rules/", path=str(candidates[0]),
-                      hint="run `lotwarden demo` from the lotwarden source folder")
+    """(sample_feeds, rules, sample config or None): the ones shipped with lotwarden (``monitor.resources``),
+    or those under ``start`` when given (a folder holding ``sample_feeds/``, ``rules/`` and optionally
+    ``config/lotwarden.toml``)."""
+    if start is None:
+        feeds, rules, cfg = demo_feeds_dir(), demo_rules_dir(), sample_config_path()
+    else:
+        feeds, rules, cfg = start / "sample_feeds", start / "rules", start / "config" / "lotwarden.toml"
+    require_dir(feeds, "sample_feeds")
+    require_dir(rules, "rules")
+    return feeds, rules, (cfg if cfg.is_file() else None)
 
 
 def free_loopback_port() -> int:
@@ -120,7 +122,7 @@ class PrintingSink:
         self.count = 0
         self.saved: list[Path] = []
 
-    async def handle_DATA(self, server: Any, session: Any, envelope: Any) -> str:  # noqa: N802 (aiosmtpd API)
+    async def handle_DATA(self, server: Any, session: Any, envelope: Any) -> str:  # aiosmtpd's hook name
         from email import message_from_bytes
         from email.policy import default
 
@@ -334,73 +336,77 @@ def run_demo(out: TextIO | None = None, *, workdir: Path | None = None, start: P
     controller.start()
     cfg = write_demo_config(root, profile_tables(repo_cfg), smtp_port)
     story.say(f"demo plant folder: {root}")
+    story.say(f"sample exports and rules from: {feeds.parent}")
     story.say(f"config: {cfg.name}; {len(list((root / 'rules').glob('*.toml')))} rule files; "
               f"{len(samples)} sample exports; alerts -> state/alerts.jsonl"
               + f" and e-mail via 127.0.0.1:{smtp_port}")
 
-    log_file = open(root / "state-daemon.log", "a", encoding="utf-8")
-    daemon = Daemon(cfg, on_event=story.on_event, log_stream=log_file)
-    result: dict[str, int] = {}
-    th = threading.Thread(target=lambda: result.setdefault("rc", daemon.run()), name="lotwarden-demo-daemon")
-    th.start()
-    follower = AlertFollower(root / "state" / "alerts.jsonl", story)
-    ok = True
-    try:
-        if not wait_until(lambda: daemon.ready.is_set() or not th.is_alive(), 10):
-            story.say("daemon did not start; see state-daemon.log")
-            return 2
-        if not th.is_alive():
-            story.say(f"daemon stopped at start-up (exit {result.get('rc')}); see state-daemon.log")
-            return 2
-        deadline = time.monotonic() + timeout
-        for i, src in enumerate(samples):
-            dest = root / "drop" / src.name
-            mode = i % 3
-            before = daemon.files_done
-            if mode == 0:
-                story.say(f"weigher writes {src.name} in pieces")
-                drop_in_pieces(src, dest)
-            elif mode == 1:
-                story.say(f"weigher writes {src.name}.part and renames it")
-                drop_by_rename(src, dest)
-            else:
-                story.say(f"weigher copies {src.name}")
-                shutil.copyfile(src, dest)
-            left = max(1.0, deadline - time.monotonic())
-            if not wait_until(lambda: daemon.files_done > before, min(8.0, left)):
-                story.say(f"  !! {src.name} not taken in time")
+    with open(root / "state-daemon.log", "a", encoding="utf-8") as log_file:
+        daemon = Daemon(cfg, on_event=story.on_event, log_stream=log_file)
+        result: dict[str, int] = {}
+        th = threading.Thread(target=lambda: result.setdefault("rc", daemon.run()), name="lotwarden-demo-daemon")
+        th.start()
+        follower = AlertFollower(root / "state" / "alerts.jsonl", story)
+        ok = True
+
+        def taken_after(count: int) -> Callable[[], bool]:
+            return lambda: daemon.files_done > count
+
+        try:
+            if not wait_until(lambda: daemon.ready.is_set() or not th.is_alive(), START_SECONDS):
+                story.say("daemon did not start; see state-daemon.log")
+                return 2
+            if not th.is_alive():
+                story.say(f"daemon stopped at start-up (exit {result.get('rc')}); see state-daemon.log")
+                return 2
+            deadline = time.monotonic() + timeout
+            for i, src in enumerate(samples):
+                dest = root / "drop" / src.name
+                mode = i % 3
+                before = daemon.files_done
+                if mode == 0:
+                    story.say(f"weigher writes {src.name} in pieces")
+                    drop_in_pieces(src, dest)
+                elif mode == 1:
+                    story.say(f"weigher writes {src.name}.part and renames it")
+                    drop_by_rename(src, dest)
+                else:
+                    story.say(f"weigher copies {src.name}")
+                    shutil.copyfile(src, dest)
+                left = max(1.0, deadline - time.monotonic())
+                if not wait_until(taken_after(before), min(8.0, left)):
+                    story.say(f"  !! {src.name} not taken in time")
+                    ok = False
+                follower.poll()
+            if samples:
+                again = samples[0]
+                before = daemon.files_done
+                story.say(f"weigher sends {again.name} a second time (same content, new name)")
+                drop_by_rename(again, root / "drop" / f"resent-{again.name}")
+                if not wait_until(taken_after(before), 8.0):
+                    story.say("  !! the re-sent file was not taken in time")
+                    ok = False
+                follower.poll()
+            story.say("end of shift: closing every open lot")
+            fut = daemon.call_soon(lambda d: d.close_all_lots())
+            fut.result(timeout=15)
+            db = root / "state" / "lotwarden.db"
+            if not wait_until(lambda: pending_deliveries(db, "log") == 0, 10, 0.1):
+                story.say("  !! some alerts were still waiting for the alert log")
                 ok = False
             follower.poll()
-        if samples:
-            again = samples[0]
-            before = daemon.files_done
-            story.say(f"weigher sends {again.name} a second time (same content, new name)")
-            drop_by_rename(again, root / "drop" / f"resent-{again.name}")
-            if not wait_until(lambda: daemon.files_done > before, 8.0):
-                story.say("  !! the re-sent file was not taken in time")
+            story.say("stopping the daemon (it sends what the e-mail channel still groups)")
+            daemon.stop()
+            th.join(15)
+            if pending_deliveries(db, "email"):
+                story.say("  !! some e-mails were not delivered")
                 ok = False
-            follower.poll()
-        story.say("end of shift: closing every open lot")
-        fut = daemon.call_soon(lambda d: d.close_all_lots())
-        fut.result(timeout=15)
-        db = root / "state" / "lotwarden.db"
-        if not wait_until(lambda: pending_deliveries(db, "log") == 0, 10, 0.1):
-            story.say("  !! some alerts were still waiting for the alert log")
-            ok = False
-        follower.poll()
-        story.say("stopping the daemon (it sends what the e-mail channel still groups)")
-        daemon.stop()
-        th.join(15)
-        if pending_deliveries(db, "email"):
-            story.say("  !! some e-mails were not delivered")
-            ok = False
-        wait_until(lambda: sink.count > 0, 3)   # the sink prints from its own thread
-        print_summary(summary_rows(db), story.say)
-    finally:
-        daemon.stop()
-        th.join(15)
-        log_file.close()
-        controller.stop()
+            wait_until(lambda: sink.count > 0, 3)   # the sink prints from its own thread
+            print_summary(summary_rows(db), story.say)
+        finally:
+            daemon.stop()
+            th.join(15)
+            controller.stop()
     if sink.saved:
         story.say(f"e-mails received are saved in {mail_dir} (.eml, the HTML part and the chart PNGs)")
     story.say(f"done: {daemon.files_done} {'file' if daemon.files_done == 1 else 'files'} taken, {sink.count} "

@@ -6,7 +6,7 @@ A batch of files (one file for ``process``) goes through two short write transac
 1. *mark* — each file is known by the SHA-256 of its bytes; content already done is a duplicate (marked and
    alerted here); otherwise a ``processing`` row is written, which ``recover`` retries after a crash. This
    commit does not wait for the disk (a lost 'processing' mark only means the file is taken from the drop
-   folder again); when it marked a duplicate, ``Store.sync`` makes it durable before the file moves.
+   folder again); when it marked a duplicate, ``Database.sync`` makes it durable before the file moves.
 2. *done* — for each file in order: values, lot openings and closings, verdicts, audit records and every
    alert they raise (outbox), with the file's done / rejected mark and its planned archive path. All or
    nothing: a crash rolls the whole batch back and the files, still in the drop folder, are retried.
@@ -27,25 +27,26 @@ import hashlib
 import logging
 import os
 import signal
-import sqlite3
 import stat
 import threading
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any, Callable, Iterator, Sequence
+from typing import Any
 
 from monitor.alerts import outbox
 from monitor.alerts.alert import Alert
 from monitor.daemon import accumulate, archive, judge
 from monitor.daemon.accumulate import Judging, Tally, lot_name
 from monitor.daemon.config import Config
-from monitor.daemon.store import Store, inserted_id, utc_iso
 from monitor.daemon.watcher import entry_kind
 from monitor.errors import ExportError
 from monitor.lot import LotKey, Verdict
 from monitor.rulebook import RULE_KEYS, Rule, match_rule
+from monitor.state import audit, files
+from monitor.state.database import Connection, Database, Savepoint, utc_iso
 
 log = logging.getLogger("lotwarden.intake")
 
@@ -110,13 +111,13 @@ class _Item:
 
 
 def _now() -> datetime:
-    return datetime.now(timezone.utc)
+    return datetime.now(UTC)
 
 
 class Intake:
     """Turns finished files into stored values, verdicts and alerts. Thread-safe (one lock per intake)."""
 
-    def __init__(self, config: Config, rules: Sequence[Rule], store: Store, *, clock: Clock = _now,
+    def __init__(self, config: Config, rules: Sequence[Rule], store: Database, *, clock: Clock = _now,
                  evaluate: judge.Evaluator | None = None) -> None:
         from monitor import engine  # imported here, at start-up, not when the first lot closes
         from monitor.ingest import read_export_bytes
@@ -214,39 +215,35 @@ class Intake:
         it.size, it.mtime = st.st_size, st.st_mtime
         it.sha = hashlib.sha256(it.data).hexdigest()
 
-    def _mark(self, conn: sqlite3.Connection, it: _Item, now: datetime) -> None:
+    def _mark(self, conn: Connection, it: _Item, now: datetime) -> None:
         """Transaction 1 for one file: finish a crash's leftover, mark a duplicate, or mark processing."""
         at = utc_iso(now)
-        left = conn.execute("SELECT id, state, archived_path FROM files WHERE sha256 = ? AND path = ?"
-                            " AND archived_at IS NULL ORDER BY id DESC LIMIT 1", (it.sha, str(it.path))).fetchone()
+        left = files.left_over(conn, it.sha, str(it.path))
         if left is not None and left[1] != "processing" and left[0] not in {m[2] for m in self._moved}:
             it.file_id = left[0]
             it.outcome = FileOutcome(str(it.path), "archived", file_id=left[0], sha256=it.sha,
                                      reason=f"already {left[1]}; finished its move")
-            it.move = (Path(left[2]), left[1])
+            it.move = (_planned_path(left.id, left.state, left.archived_path), left.state)
             return
         if left is not None and left[1] == "processing":
             it.file_id = left[0]
         if not self._mark_duplicate(conn, it, now, at) and it.file_id is None:
-            cur = conn.execute("INSERT INTO files(sha256, path, size, mtime, first_seen_at, state)"
-                               " VALUES (?,?,?,?,?,'processing')", (it.sha, str(it.path), it.size, it.mtime, at))
-            it.file_id = inserted_id(cur)
+            it.file_id = files.insert(conn, sha256=it.sha, path=str(it.path), size=it.size, mtime=it.mtime,
+                                      first_seen_at=at, state="processing")
 
-    def _mark_duplicate(self, conn: sqlite3.Connection, it: _Item, now: datetime, at: str) -> bool:
-        first = conn.execute("SELECT id, path, processed_at, archived_path FROM files WHERE sha256 = ?"
-                             " AND state = 'done' ORDER BY id LIMIT 1", (it.sha,)).fetchone()
+    def _mark_duplicate(self, conn: Connection, it: _Item, now: datetime, at: str) -> bool:
+        first = files.first_done(conn, it.sha)
         if first is None:
             return False
         if it.file_id is None:
-            cur = conn.execute("INSERT INTO files(sha256, path, size, mtime, first_seen_at, state)"
-                               " VALUES (?,?,?,?,?,'duplicate')", (it.sha, str(it.path), it.size, it.mtime, at))
-            it.file_id = inserted_id(cur)
+            it.file_id = files.insert(conn, sha256=it.sha, path=str(it.path), size=it.size, mtime=it.mtime,
+                                      first_seen_at=at, state="duplicate")
         target = self._plan_target(conn, self.config.state.archive, it.path.name, now)
         reason = (f"same content as file {first[0]} ({Path(first[1]).name}, processed {first[2]});"
                   " not counted again")
-        conn.execute("UPDATE files SET state='duplicate', processed_at=?, archived_path=?, reason=?, duplicate_of=?"
-                     " WHERE id=?", (at, str(target), reason, first[0], it.file_id))
-        Store.audit(conn, at, "file-duplicate", file_id=it.file_id,
+        files.mark_duplicate(conn, int(it.file_id), at=at, archived_path=str(target), reason=reason,
+                             duplicate_of=first[0])
+        audit.append(conn, at, "file-duplicate", file_id=it.file_id,
                     detail={"path": str(it.path), "sha256": it.sha, "duplicate_of": first[0]})
         alert = Alert(kind="file-duplicate", dedup_key=f"file-duplicate|{it.file_id}", created_at=at,
                       data={"file": it.path.name, "path": str(it.path), "sha256": it.sha, "reason": reason,
@@ -277,7 +274,8 @@ class Intake:
         at = utc_iso(now)
         with self._write() as conn:
             for it in todo:
-                conn.execute("SAVEPOINT one_file")
+                one_file = Savepoint(conn, "one_file")
+                one_file.begin()
                 try:
                     if self._mark_duplicate(conn, it, now, at):  # same content earlier in this batch
                         pass
@@ -286,31 +284,30 @@ class Intake:
                     else:
                         self._take(conn, it, now, at)
                 except Exception as exc:  # a bug of ours on this file: undo its part, keep it safe, tell people
-                    conn.execute("ROLLBACK TO one_file")
+                    one_file.rollback()
                     self._recent.clear()
                     log.exception("intake failed on %s; quarantining it", it.path)
                     it.error = (f"lotwarden failed on this file ({type(exc).__name__}: {exc}); it is kept in"
                                 " quarantine for a person to look at", None)
                     self._mark_rejected(conn, it, now, at)
-                conn.execute("RELEASE one_file")
+                one_file.release()
         for it in todo:
             self._maybe_crash("after-commit", it.call)
             self._maybe_crash("before-archive", it.call)
 
-    def _take(self, conn: sqlite3.Connection, it: _Item, now: datetime, at: str) -> None:
+    def _take(self, conn: Connection, it: _Item, now: datetime, at: str) -> None:
         how = self._judging()
         tally = Tally()
         # the archive path is chosen first and recorded with the file: verdicts and alerts name the file
         # where it will lie, and the move after the commit goes to exactly this path
         target = self._plan_target(conn, self.config.state.archive, it.path.name, now)
-        conn.execute("UPDATE files SET archived_path=? WHERE id=?", (str(target), it.file_id))
-        prev = conn.execute("SELECT id, sha256, processed_at FROM files WHERE path = ? AND state = 'done'"
-                            " AND sha256 != ? ORDER BY id DESC LIMIT 1", (str(it.path), it.sha)).fetchone()
+        files.set_archived_path(conn, int(it.file_id or 0), str(target))
+        prev = files.earlier_version(conn, str(it.path), it.sha)
         status = "taken"
         if prev is not None:
             status = "revision"
-            conn.execute("UPDATE files SET revision_of = ? WHERE id = ?", (prev[0], it.file_id))
-            Store.audit(conn, at, "file-revised", file_id=it.file_id,
+            files.set_revision_of(conn, int(it.file_id or 0), prev[0])
+            audit.append(conn, at, "file-revised", file_id=it.file_id,
                         detail={"path": str(it.path), "sha256": it.sha, "previous": prev[0]})
             alert = Alert(kind="file-revised", dedup_key=f"file-revised|{it.file_id}", created_at=at,
                           data={"file": it.path.name, "path": str(it.path), "sha256": it.sha,
@@ -328,11 +325,11 @@ class Intake:
             n_values = accumulate.add_values(conn, how, file_id, export, density, now, tally,
                                              lambda: self._maybe_crash("mid-values", it.call), path=str(target))
         n_bad = len(getattr(export, "bad_rows", ()) or ())
-        conn.execute("UPDATE files SET state='done', processed_at=?, archived_path=?, kind=?, n_values=?,"
-                     " n_bad_rows=? WHERE id=?", (at, str(target), kind, n_values, n_bad, file_id))
+        files.mark_done(conn, file_id, at=at, archived_path=str(target), kind=kind, n_values=n_values,
+                        n_bad_rows=n_bad)
         bad_rows = tuple(getattr(export, "bad_rows", ()) or ())
         notes = [str(n) for n in (getattr(export, "notes", ()) or ())]
-        Store.audit(conn, at, "file-taken", file_id=file_id,
+        audit.append(conn, at, "file-taken", file_id=file_id,
                     detail={"path": str(it.path), "sha256": it.sha, "kind": kind, "values": n_values,
                             "bad_rows": n_bad, "profile": getattr(it.profile, "name", None),
                             "archived_path": str(target), "lots_opened": tally.opened, "notes": notes,
@@ -344,12 +341,11 @@ class Intake:
                                  alerts=tuple(tally.alerts), kind=kind, reason="; ".join(said + notes))
         it.move = (target, "done")
 
-    def _mark_rejected(self, conn: sqlite3.Connection, it: _Item, now: datetime, at: str) -> None:
+    def _mark_rejected(self, conn: Connection, it: _Item, now: datetime, at: str) -> None:
         reason, exc = it.error or ("rejected", None)
         target = self._plan_target(conn, self.config.state.quarantine, it.path.name, now)
-        conn.execute("UPDATE files SET state='rejected', processed_at=?, archived_path=?, reason=? WHERE id=?",
-                     (at, str(target), reason, it.file_id))
-        Store.audit(conn, at, "file-rejected", file_id=it.file_id,
+        files.mark_rejected(conn, it.file_id, at=at, archived_path=str(target), reason=reason)
+        audit.append(conn, at, "file-rejected", file_id=it.file_id,
                     detail={"path": str(it.path), "sha256": it.sha, "reason": reason})
         data: dict[str, Any] = {"file": it.path.name, "path": str(it.path), "sha256": it.sha, "reason": reason,
                                 "quarantined_to": str(target)}
@@ -361,9 +357,9 @@ class Intake:
                                  alerts=(alert.dedup_key,) if new else ())
         it.move = (target, "rejected")
 
-    def _plan_target(self, conn: sqlite3.Connection, root: Path, name: str, now: datetime) -> Path:
+    def _plan_target(self, conn: Connection, root: Path, name: str, now: datetime) -> Path:
         def planned(c: Path) -> bool:
-            return conn.execute("SELECT 1 FROM files WHERE archived_path = ? LIMIT 1", (str(c),)).fetchone() is not None
+            return files.is_planned(conn, str(c))
         return archive.free_name(archive.dated_folder(root, now), name, planned)
 
     # -- moves ---------------------------------------------------------------------------------
@@ -386,8 +382,7 @@ class Intake:
                 return None
             if state == "rejected":
                 with self.store.read() as conn:
-                    row = conn.execute("SELECT reason, sha256, processed_at FROM files WHERE id=?",
-                                       (file_id,)).fetchone()
+                    row = files.reject_reason(conn, file_id)
                 archive.write_reason(final, _reason_text(src, final, *row))
         except OSError as exc:
             log.error("cannot move %s to %s: %s; will retry", src, final, exc)
@@ -399,14 +394,14 @@ class Intake:
         return str(final)
 
     @contextmanager
-    def _write(self, *, durable: bool = True) -> Iterator[sqlite3.Connection]:
+    def _write(self, *, durable: bool = True) -> Iterator[Connection]:
         """A write transaction that also records the archive moves done since the last one (a move not
         recorded is found again by ``recover``, so ``durable=False`` is safe for those too)."""
         pending = list(self._moved)
         try:
             with self.store.write(durable=durable) as conn:
                 if pending:
-                    conn.executemany("UPDATE files SET archived_at=?, archived_path=? WHERE id=?", pending)
+                    files.record_moves(conn, pending)
                 yield conn
         except BaseException:
             self._recent.clear()  # rolled back: what it stored is gone
@@ -445,8 +440,7 @@ class Intake:
         with self._lock:
             out: list[FileOutcome] = []
             with self.store.read() as conn:
-                rows = conn.execute("SELECT id, path, archived_path, state, sha256 FROM files"
-                                    " WHERE archived_at IS NULL ORDER BY id").fetchall()
+                rows = files.unarchived(conn)
             for file_id, path, target, state, sha in rows:
                 src = Path(path)
                 if state == "processing":
@@ -456,7 +450,7 @@ class Intake:
                     self._skip_move(file_id, path, "the drop folder now holds different content under this"
                                                    " name; it is taken as a new file")
                     continue
-                moved = self._finish_move(file_id, src, Path(target), state)
+                moved = self._finish_move(file_id, src, _planned_path(file_id, state, target), state)
                 out.append(FileOutcome(path, "archived", file_id=file_id, sha256=sha, moved_to=moved,
                                        reason=f"already {state}; finished its move"))
             self.flush()
@@ -464,8 +458,7 @@ class Intake:
 
     def _retry(self, file_id: int, src: Path, sha: str) -> FileOutcome:
         with self._write() as conn:
-            conn.execute("UPDATE files SET attempts = attempts + 1 WHERE id = ?", (file_id,))
-            attempts = int(conn.execute("SELECT attempts FROM files WHERE id = ?", (file_id,)).fetchone()[0])
+            attempts = files.count_attempt(conn, file_id)
         if attempts > MAX_ATTEMPTS and src.exists() and _sha_of(src) == sha:
             now = self.clock()
             it = _Item(src, 0, sha=sha, file_id=file_id,
@@ -483,8 +476,8 @@ class Intake:
     def _skip_move(self, file_id: int, path: str, why: str) -> None:
         at = utc_iso(self.clock())
         with self._write() as conn:
-            conn.execute("UPDATE files SET archived_at=? WHERE id=?", (at, file_id))
-            Store.audit(conn, at, "file-move-skipped", file_id=file_id, detail={"path": path, "why": why})
+            files.set_archived_at(conn, file_id, at)
+            audit.append(conn, at, "file-move-skipped", file_id=file_id, detail={"path": path, "why": why})
 
     def _abandon(self, file_id: int, path: str, sha: str, outcome: FileOutcome) -> None:
         """A 'processing' row whose file vanished or changed before it could be taken."""
@@ -494,9 +487,8 @@ class Intake:
         else:
             reason = f"the file changed before it was processed; the new content is file {outcome.file_id}"
         with self._write() as conn:
-            conn.execute("UPDATE files SET state='rejected', processed_at=?, archived_at=?, reason=? WHERE id=?",
-                         (at, at, reason, file_id))
-            Store.audit(conn, at, "file-rejected", file_id=file_id, detail={"path": path, "reason": reason})
+            files.mark_abandoned(conn, file_id, at=at, reason=reason)
+            audit.append(conn, at, "file-rejected", file_id=file_id, detail={"path": path, "reason": reason})
             if outcome.status == "vanished":
                 alert = Alert(kind="file-rejected", dedup_key=f"file-rejected|{file_id}", created_at=at,
                               data={"file": Path(path).name, "path": path, "sha256": sha, "reason": reason})
@@ -521,6 +513,13 @@ def _parse_crash(text: str) -> tuple[str, int] | None:
     if point not in CRASH_POINTS:
         raise ValueError(f"{CRASH_ENV}={text!r}: point must be one of {', '.join(CRASH_POINTS)}")
     return point, int(n) if n else 1
+
+
+def _planned_path(file_id: int, state: str, archived_path: str | None) -> Path:
+    """The archive / quarantine path a settled file's row names (every settled row names one)."""
+    if archived_path is None:
+        raise RuntimeError(f"file {file_id} is {state} but its row names no archive path")
+    return Path(archived_path)
 
 
 def _sha_of(path: Path) -> str | None:

@@ -10,19 +10,21 @@ from __future__ import annotations
 import json
 import logging
 import math
-import sqlite3
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import replace
-from typing import Any, Callable, Mapping, Sequence
+from typing import Any
 
 import numpy as np
 
 from monitor.alerts import outbox
 from monitor.alerts.alert import Alert
 from monitor.daemon import rejudge
-from monitor.daemon.store import Store
-from monitor.lot import LotData, LotKey, LotSummary, Verdict, excluded_counts, unjudged
+from monitor.lot import LotData, LotKey, LotSummary, Verdict, excluded_counts, no_rule_reason, unjudged
 from monitor.rulebook import Rule
-from monitor.units import factor_to_rule_unit
+from monitor.state import audit, verdicts
+from monitor.state import lots as lot_store
+from monitor.state.database import Connection
+from monitor.units import to_rule_unit
 
 log = logging.getLogger("lotwarden.intake")
 
@@ -30,16 +32,12 @@ Evaluator = Callable[[LotData, Rule], Verdict]
 MAX_ALERT_VALUES = 10_000
 
 
-def no_rule_reason(product: str) -> str:
-    return f"no rule matches product {product or '(none)'!r}; add a rule file naming it under `products`"
-
-
 FETCH_ROWS = 50_000
 RECENT_VALUES_MAX = 200_000   # values kept in memory over all recent lots (a few MB)
 RECENT_LOT_MAX = 10_000       # a lot longer than this is read back from the store when it closes
 
 
-def load_lot_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, rule: Rule | None
+def load_lot_values(conn: Connection, lot_id: int, key: LotKey, rule: Rule | None
                     ) -> tuple[LotData, str | None]:
     """The stored values of a lot in arrival order, converted to the rule's unit, as LotData.
 
@@ -49,27 +47,19 @@ def load_lot_values(conn: sqlite3.Connection, lot_id: int, key: LotKey, rule: Ru
     a usable value (``excluded`` names why) is a NaN in its place and counts in ``excluded_by``; its unit
     plays no part in the conversion. Files are named where they lie (their archive path).
     """
-    groups = conn.execute("SELECT unit, density, excluded, min(seq) AS first, count(*) FROM lot_values"
-                          " WHERE lot_id = ? GROUP BY unit, density, excluded ORDER BY first", (lot_id,)).fetchall()
+    groups = lot_store.value_groups(conn, lot_id)
     pairs = [(u, d) for u, d, why, _first, _n in groups if not why]
     excluded_by: dict[str, int] = {}
     for _u, _d, why, _first, count in groups:
         if why:
             excluded_by[why] = excluded_by.get(why, 0) + int(count)
-    files = tuple(r[0] for r in conn.execute(
-        "SELECT COALESCE(f.archived_path, f.path) FROM lot_values v JOIN files f ON f.id = v.file_id"
-        " WHERE v.lot_id = ? GROUP BY v.file_id ORDER BY min(v.seq)", (lot_id,)))
+    files = lot_store.file_paths(conn, lot_id)
     factor, problem, _assumed = unit_factors(pairs, rule)
     per_row = problem is None and len(pairs) > 1 and any(f != 1.0 for f in factor.values())
-    cols = "value, head, unit, density" if per_row else "value, head"
-    cur = conn.execute(f"SELECT {cols} FROM lot_values WHERE lot_id = ? ORDER BY seq", (lot_id,))
     chunks: list[np.ndarray] = []
     heads: list[str] = []
     shared: dict[str, str] = {}
-    while True:
-        rows = cur.fetchmany(FETCH_ROWS)
-        if not rows:
-            break
+    for rows in lot_store.value_chunks(conn, lot_id, with_units=per_row, chunk=FETCH_ROWS):
         chunk = np.array([r[0] for r in rows], dtype=np.float64)  # NULL (non-finite, excluded) -> nan
         if per_row:  # an excluded row's unit has no factor: its value is NaN whatever it is multiplied by
             chunk *= np.array([factor.get((r[-2], r[-1]), 1.0) for r in rows], dtype=np.float64)
@@ -87,19 +77,17 @@ def unit_factors(pairs: Sequence[tuple[str, float | None]], rule: Rule | None
     """Factor from each (unit, density) to the rule's unit, the first conversion problem (or None), and
     whether some values carried no unit (unit "") and were taken to be in the rule's unit.
 
-    ``monitor.units.factor_to_rule_unit`` decides each pair; with no rule, or a rule without a unit, every
+    ``monitor.units.to_rule_unit`` decides each pair; with no rule, or a rule without a unit, every
     factor is 1."""
     factor: dict[tuple[str, float | None], float] = {}
     problem = None
     assumed = False
     rule_unit = rule.unit if rule is not None else ""
     for u, d in pairs:
-        try:
-            factor[(u, d)], took = factor_to_rule_unit(u, rule_unit, d)
-        except ValueError as exc:
-            factor[(u, d)], took = math.nan, False
-            problem = problem or f"values in {u!r} cannot be judged in {rule_unit}: {exc}"
-        assumed = assumed or took
+        c = to_rule_unit(u, rule_unit, d)
+        factor[(u, d)] = c.factor
+        problem = problem or c.problem
+        assumed = assumed or c.assumed
     return factor, problem, assumed
 
 
@@ -147,7 +135,7 @@ class RecentValues:
         if entry is None or entry.n != seq0 - 1 or entry.n + len(values) > RECENT_LOT_MAX or not units:
             return
         why = list(excluded) if excluded is not None else [""] * len(units)
-        usable = [u for u, w in zip(units, why) if not w] if any(why) else units
+        usable = [u for u, w in zip(units, why, strict=False) if not w] if any(why) else units
         if usable:
             pair = (usable[0], density)
             if usable.count(usable[0]) != len(usable) or (entry.pairs and entry.pairs[0] != pair):
@@ -205,15 +193,11 @@ def summary_lot(key: LotKey, n: int, mean: float, sd: float, unit: str, density:
                 rule: Rule | None, file_path: str) -> tuple[LotData, str | None]:
     """A lot known only by n / mean / sd, in the rule's unit when it can be converted (a summary without a
     unit is taken to be in the rule's unit: ``unit_assumed``)."""
-    problem = None
     rule_unit = rule.unit if rule is not None else ""
-    try:
-        f, assumed = factor_to_rule_unit(unit, rule_unit, density)
-        if rule_unit:
-            mean, sd, unit = mean * f, sd * abs(f), rule_unit
-    except ValueError as exc:
-        assumed = False
-        problem = f"values in {unit!r} cannot be judged in {rule_unit}: {exc}"
+    c = to_rule_unit(unit, rule_unit, density)
+    assumed, problem = c.assumed, c.problem
+    if problem is None and rule_unit:
+        mean, sd, unit = mean * c.factor, sd * abs(c.factor), rule_unit
     return LotData(key=key, summary=LotSummary(int(n), float(mean), float(sd)), files=(file_path,),
                    unit=unit, unit_assumed=assumed), problem
 
@@ -236,7 +220,7 @@ def judge(lot: LotData, rule: Rule | None, problem: str | None, evaluate: Evalua
 
 def with_lot_facts(verdict: Verdict, lot: LotData) -> Verdict:
     """``verdict`` with the lot's ``unit_assumed`` and its exclusion counts (all four reasons)."""
-    return replace(verdict, unit_assumed=lot.unit_assumed,
+    return replace(verdict, unit_assumed=lot.unit_assumed, runs=lot.runs,
                    excluded_by=excluded_counts(lot.excluded_by, verdict.excluded))
 
 
@@ -263,7 +247,7 @@ def alert_values(lot: LotData) -> list[float | None]:
     return [float(x) if math.isfinite(x) else None for x in head.tolist()]
 
 
-def record_verdict(conn: sqlite3.Connection, verdict: Verdict, rule: Rule | None, lot: LotData, *, at: str,
+def record_verdict(conn: Connection, verdict: Verdict, rule: Rule | None, lot: LotData, *, at: str,
                    channels: Sequence[str], lot_id: int | None = None, summary_id: int | None = None,
                    close_reason: str | None = None, file_id: int | None = None, lot_rows: int | None = None,
                    previous: rejudge.Previous | None = None, why: str = "") -> list[Alert]:
@@ -278,13 +262,10 @@ def record_verdict(conn: sqlite3.Connection, verdict: Verdict, rule: Rule | None
     rule_name = rule.name if rule else ""
     version = rule.version if rule else ""
     rule_hash = rule.content_hash if rule else ""
-    conn.execute(
-        "INSERT INTO verdicts(decided_at, line, product, lot, rule, rule_version, rule_hash, verdict, n, mean,"
-        " target, unit, payload, lot_id, summary_id, close_reason, lot_rows)"
-        " VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?,?)",
-        (at, key.line, key.product, key.lot, rule_name, version, rule_hash, verdict.verdict, verdict.n,
-         payload["mean"], payload["target"], verdict.unit, json.dumps(payload, sort_keys=True, allow_nan=False),
-         lot_id, summary_id, close_reason, lot_rows))
+    verdicts.insert(conn, verdicts.NewVerdict(
+        at, key.line, key.product, key.lot, rule_name, version, rule_hash, verdict.verdict, verdict.n,
+        payload["mean"], payload["target"], verdict.unit, json.dumps(payload, sort_keys=True, allow_nan=False),
+        lot_id, summary_id, close_reason, lot_rows))
     detail: dict[str, Any] = {
         "verdict": verdict.verdict, "rule": rule_name, "rule_version": version, "rule_hash": rule_hash,
         "n": verdict.n, "mean": payload["mean"], "p_value": payload["p_value"], "reason": verdict.reason,
@@ -293,7 +274,7 @@ def record_verdict(conn: sqlite3.Connection, verdict: Verdict, rule: Rule | None
     if previous is not None:
         detail["replaces"] = {"verdict_id": previous.verdict_id, "verdict": previous.verdict,
                               "decided_at": previous.decided_at, "why": why}
-    Store.audit(conn, at, "verdict", file_id=file_id, line=key.line, product=key.product, lot=key.lot,
+    audit.append(conn, at, "verdict", file_id=file_id, line=key.line, product=key.product, lot=key.lot,
                 detail=detail)
     new: list[Alert] = []
     values: list[float | None] | None = None

@@ -9,12 +9,14 @@ replaces, so each change is told once, across crashes and retries.
 from __future__ import annotations
 
 import json
-import sqlite3
 from dataclasses import dataclass
 from typing import Any
 
 from monitor.alerts.alert import Alert
 from monitor.lot import LotKey, Verdict
+from monitor.state import lots as lot_store
+from monitor.state import verdicts
+from monitor.state.database import Connection
 
 TOLD = ("hold", "review")   # verdicts that raised an alert: a change of those is told
 
@@ -40,11 +42,9 @@ class Previous:
                 "rule_version": self.rule_version, "n": self.n, "mean": self.mean, "p_value": self.p_value}
 
 
-def previous_verdict(conn: sqlite3.Connection, lot_id: int, key: LotKey) -> Previous | None:
+def previous_verdict(conn: Connection, lot_id: int, key: LotKey) -> Previous | None:
     """The lot's latest stored verdict, or None when it was never judged (looked up by the indexed key)."""
-    row = conn.execute("SELECT id, verdict, decided_at, rule, rule_version, n, payload, lot_rows FROM verdicts"
-                       " WHERE line = ? AND product = ? AND lot = ? AND lot_id = ? ORDER BY id DESC LIMIT 1",
-                       (key.line, key.product, key.lot, lot_id)).fetchone()
+    row = verdicts.latest_for_lot(conn, key.line, key.product, key.lot, lot_id)
     if row is None:
         return None
     verdict_id, verdict, decided_at, rule, version, n, text, lot_rows = row
@@ -62,11 +62,9 @@ def previous_verdict(conn: sqlite3.Connection, lot_id: int, key: LotKey) -> Prev
                     lot_rows=int(lot_rows))
 
 
-def why_reopened(conn: sqlite3.Connection, lot_id: int, rows_before: int) -> str:
+def why_reopened(conn: Connection, lot_id: int, rows_before: int) -> str:
     """A sentence naming the late values (rows after ``rows_before``) and the files, where they now lie."""
-    parts = conn.execute(
-        "SELECT COALESCE(f.archived_path, f.path), count(*) FROM lot_values v JOIN files f ON f.id = v.file_id"
-        " WHERE v.lot_id = ? AND v.seq > ? GROUP BY v.file_id ORDER BY min(v.seq)", (lot_id, rows_before)).fetchall()
+    parts = lot_store.files_after(conn, lot_id, rows_before)
     total = sum(int(c) for _p, c in parts)
     if not total:
         return "the lot was judged again"

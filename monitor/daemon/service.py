@@ -12,29 +12,31 @@ from __future__ import annotations
 
 import concurrent.futures
 import logging
-import queue
 import os
+import queue
 import sys
 import threading
-from datetime import datetime, timezone
+from collections.abc import Callable
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any, Callable, TextIO
+from typing import Any, TextIO
 
+from monitor.alerts import kinds
 from monitor.alerts.alert import Alert
-from monitor.errors import LotwardenError
 from monitor.daemon.instance_lock import InstanceLock
 from monitor.daemon.logsetup import LogSetup, OneLineFormatter  # noqa: F401  (re-exported)
-from monitor.daemon.reload import (  # noqa: F401  (re-exported for callers of this module)
-    Fingerprint, Reloading, ReloadStep, content_hash, decide_reload, take_fingerprint)
+from monitor.daemon.reload import Fingerprint, Reloading, ReloadStep, content_hash, decide_reload, take_fingerprint  # noqa: F401  (re-exported for callers of this module)
+from monitor.daemon.schedlog import SkippedOncePerHour
 from monitor.daemon.signals import SignalHandling
 from monitor.daemon.watcher import FolderWatcher, NameFilter, SettleTracker, scan
+from monitor.errors import LotwardenError
 
 log = logging.getLogger("lotwarden.daemon")
 
 IDLE_CHECK_SECONDS = 30.0
 SUPERVISE_SECONDS = 5.0
 RELOAD_CHECK_SECONDS = 2.0
-STOP_DRAIN_SECONDS = 2.0
+STOP_DRAIN_SECONDS = 2.0                    # scheduler shutdown, and the channels' last pass, each
 BATCH_FILES = 32                            # files handed to intake per commit when a backlog is finished
 PAUSE_ENV = "LOTWARDEN_PAUSE_AFTER_FILES"   # test hook: stop taking files after n (crash tests)
 
@@ -42,7 +44,7 @@ EventFn = Callable[[str, dict[str, Any]], None]
 
 
 def utc_now_iso() -> str:
-    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+    return datetime.now(UTC).isoformat(timespec="seconds")
 
 
 # --------------------------------------------------------------------------------------------- daemon
@@ -77,6 +79,7 @@ class Daemon(Reloading, SignalHandling):
         self._applied_fp: Fingerprint | None = None
         self._seen_fp: Fingerprint | None = None
         self._dispatch_jobs: list[str] = []
+        self._skipped_filter: SkippedOncePerHour | None = None
         self._started_at = utc_now_iso()
         self._pause_after = int(os.environ.get(PAUSE_ENV, "0") or 0)
         self.idle_check_seconds = IDLE_CHECK_SECONDS       # job intervals; tests may shorten them
@@ -97,7 +100,7 @@ class Daemon(Reloading, SignalHandling):
         self._reload_requested = True
         self._wake.set()
 
-    def call_soon(self, fn: Callable[["Daemon"], Any]) -> "concurrent.futures.Future[Any]":
+    def call_soon(self, fn: Callable[[Daemon], Any]) -> concurrent.futures.Future[Any]:
         """Run ``fn(daemon)`` on the loop thread (which owns intake and store); returns its future."""
         fut: concurrent.futures.Future[Any] = concurrent.futures.Future()
         self._calls.put((lambda: fn(self), fut))
@@ -177,9 +180,8 @@ class Daemon(Reloading, SignalHandling):
         for outcome in recovered or ():
             describe = getattr(outcome, "describe", None)
             log.warning("recovered after an unclean stop: %s", describe() if callable(describe) else outcome)
-        self._emit_alert("daemon-started", f"daemon-started|{self._started_at}",
-                         {"config": str(self.config_path), "rules": [r.name for r in rules],
-                          "started_at": self._started_at})
+        self._store_alert(kinds.daemon_started(started_at=self._started_at, config=str(self.config_path),
+                                               rules=[r.name for r in rules]))
         self._dispatcher = self._make_dispatcher(config)
         self._apply_watch(config)
         self._start_scheduler(config)
@@ -237,7 +239,9 @@ class Daemon(Reloading, SignalHandling):
         from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_MISSED
         from apscheduler.schedulers.background import BackgroundScheduler
 
-        sched = BackgroundScheduler(timezone=timezone.utc, job_defaults={
+        # a job still busy at its next run time is skipped with a warning each time: said once per job per hour
+        self._skipped_filter = SkippedOncePerHour().install()
+        sched = BackgroundScheduler(timezone=UTC, job_defaults={
             "coalesce": True, "max_instances": 1, "misfire_grace_time": 300})
         sched.add_listener(self._on_job_event, EVENT_JOB_ERROR | EVENT_JOB_MISSED)
         sched.add_job(self._request_rescan, "interval", seconds=config.watch.rescan_seconds, id="rescan")
@@ -343,16 +347,10 @@ class Daemon(Reloading, SignalHandling):
                 fut.set_exception(exc)
 
     def _kick_drain(self) -> None:
-        """Bring the dispatcher's drain job forward so a new alert goes out now, not at the next tick."""
-        sched = self._scheduler
-        if sched is None:
-            return
-        for job_id in self._dispatch_jobs:
-            if "drain" in job_id:
-                try:
-                    sched.modify_job(job_id, next_run_time=datetime.now(timezone.utc))
-                except Exception:  # the job may be running or gone; the next tick drains anyway
-                    pass
+        """Wake the channels' delivery threads so a new alert goes out now, not at the next tick."""
+        kick = getattr(self._dispatcher, "kick", None)
+        if callable(kick):
+            kick()
 
     def _paused(self) -> bool:
         return bool(self._pause_after) and self.files_done >= self._pause_after
@@ -368,12 +366,13 @@ class Daemon(Reloading, SignalHandling):
         except Exception:  # intake never raises for bad data; anything else is a bug we survive
             log.exception("processing %s failed unexpectedly; left in the drop folder for a retry",
                           ", ".join(p.name for p in paths))
+            assert self._tracker is not None
             for p in paths:
                 self._tracker.hint(p)  # retried after the settle time; intake's dedup keeps it exactly once
             return
         self.files_done += len(outcomes)
         kick = False
-        for path, outcome in zip(paths, outcomes):
+        for path, outcome in zip(paths, outcomes, strict=False):
             describe = getattr(outcome, "describe", None)
             text = describe() if callable(describe) else repr(outcome)
             status = getattr(outcome, "status", "")
@@ -427,20 +426,25 @@ class Daemon(Reloading, SignalHandling):
 
     # ------------------------------------------------------------------ alerts
     def _emit_alert(self, kind: str, dedup_key: str, data: dict[str, Any]) -> bool:
-        """Store one daemon alert in the outbox in its own write transaction."""
-        from monitor.alerts.outbox import enqueue
+        """Store one daemon alert built by hand (kept for callers not yet on ``monitor.alerts.kinds``)."""
+        return self._store_alert(Alert(kind=kind, dedup_key=dedup_key, created_at=utc_now_iso(), data=data))
 
-        alert = Alert(kind=kind, dedup_key=dedup_key, created_at=utc_now_iso(), data=data)
+    def _store_alert(self, alert: Alert) -> bool:
+        """Store one daemon alert in the outbox in its own write transaction and wake the channels."""
+        from monitor.state.outbox import enqueue
+
         try:
             with self._store.write() as conn:
-                return enqueue(conn, alert, self._config.alerts.channels)
+                new = enqueue(conn, alert, self._config.alerts.channels)
         except Exception:
-            log.exception("could not store the %s alert", kind)
+            log.exception("could not store the %s alert", alert.kind)
             return False
+        self._kick_drain()
+        return new
 
     def _audit(self, event: str, **detail: Any) -> None:
         try:
-            self._store.record_event(datetime.now(timezone.utc), event, **detail)
+            self._store.record_event(datetime.now(UTC), event, **detail)
         except Exception:
             log.exception("could not write the %s audit record", event)
 
@@ -464,13 +468,20 @@ class Daemon(Reloading, SignalHandling):
         sched, self._scheduler = self._scheduler, None
         if sched is not None:
             _bounded(lambda: sched.shutdown(wait=True), STOP_DRAIN_SECONDS, "scheduler shutdown")
+        if self._skipped_filter is not None:
+            self._skipped_filter.remove()
+            self._skipped_filter = None
         if self._store is not None:
-            self._emit_alert("daemon-stopped", f"daemon-stopped|{self._started_at}",
-                             {"started_at": self._started_at, "stopped_at": utc_now_iso(),
-                              "files": self.files_done})
+            self._store_alert(kinds.daemon_stopped(started_at=self._started_at, stopped_at=utc_now_iso(),
+                                                   files=self.files_done))
         if self._dispatcher is not None:
+            # each channel makes a last pass (a stuck mail server is cut short); unsent alerts stay queued
             d = self._dispatcher
-            _bounded(lambda: d.drain(flush=True), STOP_DRAIN_SECONDS, "final outbox drain")
+            stop = getattr(d, "stop", None)
+            if callable(stop):
+                _bounded(lambda: stop(STOP_DRAIN_SECONDS), STOP_DRAIN_SECONDS + 2.0, "final outbox drain")
+            else:
+                _bounded(lambda: d.drain(flush=True), STOP_DRAIN_SECONDS, "final outbox drain")
         self._close_quietly()
         self._event("stopped", {"files": self.files_done})
         log.info("stopped")

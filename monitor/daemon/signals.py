@@ -5,6 +5,7 @@ from __future__ import annotations
 import logging
 import signal
 import threading
+from collections.abc import Callable
 from typing import Any
 
 log = logging.getLogger("lotwarden.daemon")
@@ -17,6 +18,8 @@ class SignalHandling:
     """
 
     _signals: list[str]
+    stop: Callable[[], None]
+    request_reload: Callable[[], None]
 
     def _install_signals(self) -> dict[int, Any]:
         if threading.current_thread() is not threading.main_thread():

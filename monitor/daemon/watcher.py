@@ -4,6 +4,11 @@ Every file-system event is only a *hint* that puts a path on the candidate list;
 finished is decided by :class:`SettleTracker` (renamed into place, a marker file, or size + mtime + inode
 unchanged across two looks spanning ``settle_seconds``). The observer watches one folder, not recursively,
 so the archive and quarantine folders may live inside it.
+
+Export order is **name order**: exporters name their files with a sortable stamp, so finished files are
+handed out sorted by name, and a finished file waits while a candidate with a smaller name is still being
+written (settling), at most ``hold_seconds`` (default max(60 s, 10 × settle_seconds)); after that it goes on
+and the log says once which file it did not wait for.
 """
 
 from __future__ import annotations
@@ -15,20 +20,19 @@ import os
 import stat as stat_module
 import threading
 import time
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable, Iterable
 
 from watchdog.events import FileSystemEvent, FileSystemEventHandler
 from watchdog.observers import Observer
+from watchdog.observers.api import BaseObserver
 from watchdog.observers.polling import PollingObserver
+
+from monitor.names import is_export_name
 
 log = logging.getLogger("lotwarden.watcher")
 
-# Names a writer uses while a file is not finished yet (common practice, no source).
-TEMP_PATTERNS: tuple[str, ...] = ("*.tmp", "*.temp", "*.part", "*.partial", "*.crdownload", "*.swp",
-                                  "*~", "~*", "*.lock", "*.filepart")
-REASON_SUFFIX = ".reason.txt"
 # inotify refuses a new watch with these when its per-user limits are reached (inotify(7)): poll instead
 WATCH_LIMIT_ERRNOS = (errno.ENOSPC, errno.EMFILE, errno.ENFILE)
 
@@ -41,8 +45,8 @@ HintFn = Callable[[Path, bool], None]
 class NameFilter:
     """Which file names in the drop folder are exports, matched with fnmatch on the name alone.
 
-    ``include`` patterns a name must match (any), ``ignore`` patterns it must not match; hidden names,
-    temporary names, quarantine reason files and marker files are never exports.
+    ``include`` patterns a name must match (any), ``ignore`` patterns it must not match; what
+    :func:`monitor.names.is_export_name` refuses (hidden, temporary, marker and reason files) never is.
     """
 
     include: tuple[str, ...] = ("*",)
@@ -51,12 +55,10 @@ class NameFilter:
 
     def accepts(self, name: str) -> bool:
         """True if ``name`` (a bare file name) is an export the daemon should take."""
-        if not name or name.startswith("."):
+        if not is_export_name(name, self.marker_suffixes):
             return False
         low = name.lower()
-        if low.endswith(REASON_SUFFIX) or any(s and low.endswith(s.lower()) for s in self.marker_suffixes):
-            return False
-        if any(fnmatch.fnmatch(low, p.lower()) for p in TEMP_PATTERNS + self.ignore):
+        if any(fnmatch.fnmatch(low, p.lower()) for p in self.ignore):
             return False
         return any(fnmatch.fnmatch(low, p.lower()) for p in self.include)
 
@@ -104,6 +106,18 @@ class _Candidate:
     stable_since: float = 0.0
     looks: int = 0
     moved: bool = False
+    held_since: float | None = None   # finished, but waiting for a file with a smaller name (export order)
+    stuck: bool = False               # held a later file past the bound: no longer waited for
+
+
+def hold_limit(settle_seconds: float) -> float:
+    """How long a finished file waits at most for a file with a smaller name still being written."""
+    return max(60.0, 10.0 * float(settle_seconds))
+
+
+def _order(path: Path) -> tuple[str, str]:
+    """Export order: by file name (exporters stamp their names sortably), then by full path."""
+    return (path.name, str(path))
 
 
 class SettleTracker:
@@ -115,13 +129,17 @@ class SettleTracker:
     With ``trust_mtime`` (a local disk, whose mtimes come from this machine's clock) the file's own mtime
     counts as the start of the unchanged span, so a file whose event arrived late (watchdog's inotify
     buffer holds events 0.5 s) is not made to wait a full settle time again; two looks are still needed.
+    Finished files come out in name order (export order); one waits while a candidate with a smaller name
+    is still settling, at most ``hold_seconds`` (default :func:`hold_limit`), after which that candidate is
+    no longer waited for (logged once).
     Thread-safe: hints come from the observer thread, looks from the main loop.
     """
 
     def __init__(self, settle_seconds: float, *, stat: StatFn = os.lstat, clock: ClockFn = time.monotonic,
                  marker_for: Callable[[Path], str | None] | None = None, trust_mtime: bool = False,
-                 wall_clock: ClockFn = time.time) -> None:
+                 wall_clock: ClockFn = time.time, hold_seconds: float | None = None) -> None:
         self.settle_seconds = float(settle_seconds)
+        self.hold_seconds = hold_limit(settle_seconds) if hold_seconds is None else float(hold_seconds)
         self.trust_mtime = trust_mtime
         self._stat = stat
         self._clock = clock
@@ -155,22 +173,51 @@ class SettleTracker:
             return len(self._candidates)
 
     def look(self) -> list[Path]:
-        """Stat every candidate once; return (and forget) those now finished, in hint order."""
+        """Stat every candidate once; return (and forget) those now finished and not waiting for a file with
+        a smaller name, in name order (export order)."""
         now = self._clock()
         with self._lock:
             items = list(self._candidates.items())
-        finished: list[Path] = []
+        finished: list[tuple[Path, _Candidate]] = []
+        settling: list[tuple[Path, _Candidate]] = []
         gone: list[Path] = []
         for path, cand in items:
             state = self._look_one(path, cand, now)
             if state == "finished":
-                finished.append(path)
+                finished.append((path, cand))
             elif state == "gone":
                 gone.append(path)
+            else:
+                cand.held_since = None
+                settling.append((path, cand))
+        released = self._release(sorted(finished, key=lambda pc: _order(pc[0])), settling, now)
         with self._lock:
-            for p in finished + gone:
+            for p in released + gone:
                 self._candidates.pop(p, None)
-        return finished
+        return released
+
+    def _release(self, finished: list[tuple[Path, _Candidate]], settling: list[tuple[Path, _Candidate]],
+                 now: float) -> list[Path]:
+        """The finished files (in name order) that no settling file with a smaller name holds back."""
+        out: list[Path] = []
+        for path, cand in finished:
+            key = _order(path)
+            before = [(p, c) for p, c in settling if not c.stuck and _order(p) < key]
+            if not before:
+                cand.held_since = None
+                out.append(path)
+                continue
+            if cand.held_since is None:
+                cand.held_since = now
+            if now - cand.held_since < self.hold_seconds:
+                continue
+            for p, c in before:   # waited long enough: go on without it, and say so once
+                c.stuck = True
+                log.warning("%s is still being written after %gs; taking %s without waiting for it, so files"
+                            " are not taken in name (export) order past it", p, self.hold_seconds, path.name)
+            cand.held_since = None
+            out.append(path)
+        return out
 
     def _look_one(self, path: Path, cand: _Candidate, now: float) -> str:
         try:
@@ -242,14 +289,14 @@ class FolderWatcher:
         self.polling = bool(polling)
         self.poll_interval = float(poll_interval)
         self._handler = _HintHandler(on_hint)
-        self._observer: Observer | PollingObserver | None = None
+        self._observer: BaseObserver | None = None
         self._lock = threading.Lock()
 
     @property
     def kind(self) -> str:
         return "polling" if self.polling else "native"
 
-    def _make(self, polling: bool) -> Observer | PollingObserver:
+    def _make(self, polling: bool) -> BaseObserver:
         obs = PollingObserver(timeout=self.poll_interval) if polling else Observer()
         obs.daemon = True
         obs.schedule(self._handler, str(self.folder), recursive=False)
@@ -271,7 +318,7 @@ class FolderWatcher:
                 obs = self._start_one(True)
             self._observer = obs
 
-    def _start_one(self, polling: bool) -> Observer | PollingObserver:
+    def _start_one(self, polling: bool) -> BaseObserver:
         obs = self._make(polling)
         try:
             obs.start()

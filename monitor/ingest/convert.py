@@ -118,7 +118,7 @@ def one_spelling(text: pa.ChunkedArray) -> str | None:
     for chunk in text.chunks:
         if len(chunk) == 0:
             continue
-        if chunk.null_count or not pa.types.is_large_string(chunk.type) and not pa.types.is_string(chunk.type):
+        if chunk.null_count or (not pa.types.is_large_string(chunk.type) and not pa.types.is_string(chunk.type)):
             return None
         _, offs_buf, data = chunk.buffers()
         kind = np.int64 if pa.types.is_large_string(chunk.type) else np.int32

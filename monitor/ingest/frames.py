@@ -36,7 +36,7 @@ def frame_of(arrays: list[object], columns: tuple[str, ...], n: int) -> pd.DataF
                                verify_integrity=False)
         except TypeError:  # another signature in another pandas version
             pass
-    return pd.DataFrame(dict(zip(columns, arrays)), index=index, copy=False)
+    return pd.DataFrame(dict(zip(columns, arrays, strict=False)), index=index, copy=False)
 
 
 def str_array(arr: pa.Array | pa.ChunkedArray) -> pd.api.extensions.ExtensionArray:

@@ -14,10 +14,10 @@ import pyarrow.compute as pc
 
 from monitor.errors import ExportError
 from monitor.ingest import convert
-from monitor.ingest.profile import CANONICAL_COLUMNS, DEFAULT_PROFILE, FeedProfile
 from monitor.ingest.frames import empty_frame, frame_of, repeat_text, str_array
+from monitor.ingest.profile import CANONICAL_COLUMNS, DEFAULT_PROFILE, FeedProfile
 from monitor.ingest.table import FRAME_TEXT, TEXT, RawTable, split_body
-from monitor.ingest.text import Header, decode, decode_large, find_header
+from monitor.ingest.text import Header, check_line_lengths, decode, decode_large, find_header
 from monitor.units import ALLOWED as ALLOWED_UNITS
 from monitor.units import conversion_factor
 
@@ -108,6 +108,7 @@ def _read(holder: list[bytes], name: str, profile: FeedProfile | None) -> Export
     buf = (decode_large(data, prof, name, _pool()) if len(data) >= LARGE_FILE_BYTES
            else decode(data, prof, name))
     del data
+    check_line_lengths(buf, name)          # before anything copies a line out of the buffer
     header = find_header(buf, prof, name)
     index, kind = _resolve_columns(header, prof, name)
     # The value column may be parsed straight into numbers (threaded, in the parser) when no cell of it needs
@@ -212,7 +213,7 @@ class _Rows:
             return
         fresh = mask & ((self.code == 0) if excluded else ((self.code == 0) | (self.code == -2)))
         if fresh.any():
-            self.reasons.append((canon, reason, self.columns[self.index[canon]]))  # type: ignore[arg-type]
+            self.reasons.append((canon, reason, self.columns[self.index[canon]]))
             self.code[fresh] = len(self.reasons)
             self.excl[fresh] = excluded
 
@@ -298,7 +299,8 @@ class _Rows:
     def _export(self, frame: pd.DataFrame, bad_rows: tuple[BadRow, ...], dropped: int,
                 markers: tuple[tuple[int, str], ...]) -> Export:
         """The Export of this file around its frame (rows or summaries, by kind)."""
-        rows, summaries = (frame, empty_frame(SUMMARY_COLUMNS)) if self.kind == "values" else (empty_frame(ROW_COLUMNS), frame)
+        rows, summaries = ((frame, empty_frame(SUMMARY_COLUMNS)) if self.kind == "values"
+                           else (empty_frame(ROW_COLUMNS), frame))
         return Export(path=self.name, kind=self.kind, rows=rows, summaries=summaries,  # type: ignore[arg-type]
                       bad_rows=bad_rows, dropped=dropped, end_of_lot=markers,
                       density=self.prof.density, profile=self.prof.name, notes=tuple(self.notes))
@@ -401,7 +403,7 @@ class _Rows:
             return repeat_text(self.prof.unit or "", self.n)
         # parse_units strips each distinct spelling itself: no need to trim a million cells first
         units, unknown = early.result() if early is not None else convert.parse_units(
-            self.columns[self.index["unit"]], self.prof.unit or "")  # type: ignore[arg-type]
+            self.columns[self.index["unit"]], self.prof.unit or "")
         self.flag(unknown, "unit", f"unknown unit '{{v}}' — allowed: {ALLOWED_UNITS}")
         return units
 
@@ -502,6 +504,7 @@ class _Rows:
         if lines.size == 0:
             return ()
         lots = self.text("lot")
+        assert lots is not None  # values exports always have a lot column
         carriers = np.flatnonzero(~marker & (pc.binary_length(lots).to_numpy(zero_copy_only=False) > 0))
         carrier_lines = self.lines[carriers]
         out = []
@@ -530,7 +533,7 @@ class _Rows:
         kept = ["lot", "product", "line", "head"]
         if pool is not None:  # side by side on the worker threads (a few new offsets buffers at once)
             arrays = [self.text(c) for c in kept] + [units, stamps]
-            cols.update(zip(kept + ["unit", "timestamp"], pool.map(text, arrays)))
+            cols.update(zip([*kept, "unit", "timestamp"], pool.map(text, arrays), strict=False))
             del arrays
             kept = []
             self._release()

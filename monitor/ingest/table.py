@@ -12,7 +12,7 @@ import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 
 from monitor.errors import ExportError
-from monitor.ingest.text import Header, Text
+from monitor.ingest.text import MAX_LINE_BYTES, Header, Text
 
 # The parser writes text columns as large_string, pandas' "str" storage: the columns an Export keeps need no
 # cast (measured: parsing into large_string costs less than parsing into string and casting the kept ones).
@@ -25,6 +25,8 @@ _UNCLEAN = re.compile(rb"[^\x21-\x7e\n]")  # a byte that may be (part of) whites
 FAST_PATH_MAX_BYTES = 16 * 1024
 _AGAIN = (0, "")  # what _parse gives when the threaded parser stopped on a cell (parse again as text)
 _BLOCK_BYTES = 4 << 20  # the threaded parser's block: measured faster than 1 MiB blocks on a 50 MB export
+# The single-threaded parser's block: a row must fit in one block, and a line may be MAX_LINE_BYTES long.
+_SINGLE_BLOCK_BYTES = max(1 << 20, 2 * (MAX_LINE_BYTES + 1))
 
 
 @dataclass(frozen=True)
@@ -90,7 +92,8 @@ def split_body(buf: Text, header: Header, name: str, numbers: tuple[int, ...] = 
     total = n_valid + len(invalid)
     if invalid:
         inv_num = np.array([num for num, _ in invalid], dtype=np.int64)
-        valid_rec = np.setdiff1d(np.arange(1, total + 1, dtype=np.int64), inv_num, assume_unique=True)
+        valid_rec: np.ndarray | slice = np.setdiff1d(np.arange(1, total + 1, dtype=np.int64), inv_num,
+                                                     assume_unique=True)
     else:
         valid_rec = slice(1, None)  # every record: no index array for a million rows
     # Record k sits on line header.line + k as long as no record before it spans lines; the first one that
@@ -125,7 +128,7 @@ def split_body(buf: Text, header: Header, name: str, numbers: tuple[int, ...] = 
         else:
             problems.append(RawProblem(line, text, f"too many fields: {len(fields)}, the header has {width}"))
     if recovered:
-        columns = [pa.chunked_array(col.chunks + [pa.array([f[i] for _, f in recovered], col.type)],
+        columns = [pa.chunked_array([*col.chunks, pa.array([f[i] for _, f in recovered], col.type)],
                                     col.type) for i, col in enumerate(columns)]
         lines = np.concatenate([lines, np.array([ln for ln, _ in recovered], dtype=np.int64)])
         order = pa.array(np.argsort(lines, kind="stable"))
@@ -153,7 +156,7 @@ def _split_small(body: memoryview, width: int, header: Header) -> RawTable | Non
     fields = [r.split(delim) for r in rows]
     if any(len(f) != width for f in fields):
         return None
-    columns = tuple(pa.chunked_array([pa.array(col, FRAME_TEXT)], FRAME_TEXT) for col in zip(*fields))
+    columns = tuple(pa.chunked_array([pa.array(col, FRAME_TEXT)], FRAME_TEXT) for col in zip(*fields, strict=True))
     lines = np.arange(header.line + 1, header.line + 1 + len(rows), dtype=np.int64)
     clean = delim != "\t" and _UNCLEAN.search(body) is None  # "," and ";" lie inside 0x21..0x7E
     return RawTable(columns, lines, (), False, clean)
@@ -177,7 +180,7 @@ def _parse(body: memoryview, names: list[str], header: Header, name: str, *, thr
         table = pacsv.read_csv(
             pa.BufferReader(pa.py_buffer(body)),
             read_options=pacsv.ReadOptions(column_names=names, use_threads=threads,
-                                           block_size=_BLOCK_BYTES if threads else 1 << 20),
+                                           block_size=_BLOCK_BYTES if threads else _SINGLE_BLOCK_BYTES),
             parse_options=pacsv.ParseOptions(delimiter=header.delimiter, quote_char='"', double_quote=True,
                                              escape_char=False, newlines_in_values=quoted,
                                              ignore_empty_lines=False, invalid_row_handler=on_invalid),
@@ -187,6 +190,6 @@ def _parse(body: memoryview, names: list[str], header: Header, name: str, *, thr
         )
     except (pa.ArrowException, ValueError) as exc:
         if threads:  # a row of another width (it cannot number), a cell not a number, other trouble
-            return pa.table({c: pa.array([], FRAME_TEXT) for c in names}), [_AGAIN] if not invalid else invalid
+            return pa.table({c: pa.array([], FRAME_TEXT) for c in names}), invalid if invalid else [_AGAIN]
         raise ExportError(f"cannot split the file into fields: {exc}", path=name, line=header.line + 1) from None
     return table, invalid

@@ -18,6 +18,13 @@ _UTF8_BOM = codecs.BOM_UTF8
 _UTF16_BOMS = (codecs.BOM_UTF16_LE, codecs.BOM_UTF16_BE)
 _UTF32_BOMS = (codecs.BOM_UTF32_LE, codecs.BOM_UTF32_BE)
 _SNIFF_ORDER = (",", ";", "\t")
+# The longest line an export may have, in bytes of its UTF-8 text without the line end. A checkweigher line is
+# well under a kilobyte; 1 MiB leaves room for long lot codes and notes, and keeps a file that is one huge
+# line (a dump, a binary stream without line ends) to a plain error instead of a parser failure.
+MAX_LINE_BYTES = 1 << 20
+# Python's csv module refuses fields above its limit (128 KiB by default); any field of a line within the
+# bound must split (the header, and rows the parser hands back).
+csv.field_size_limit(max(csv.field_size_limit(), MAX_LINE_BYTES + 1))
 # Control bytes that no text export holds (all of C0 but tab, line feed, vertical tab, form feed, return).
 _NOT_SPACE = re.compile(rb"[^ \t\n\r\x0b\x0c]")
 _CONTROL = re.compile(rb"[\x00-\x08\x0e-\x1f]")
@@ -146,6 +153,23 @@ def _refuse_empty(buf: Text, name: str, size: int) -> None:
     what = "0 bytes" if size == 0 else "only a byte-order mark" if not buf else "only whitespace"
     raise ExportError(f"empty file ({what})", path=name,
                       hint="the file has no header and no rows; an export needs a header naming its columns")
+
+
+def check_line_lengths(buf: Text, name: str, limit: int = MAX_LINE_BYTES) -> None:
+    """Raise ExportError naming the first line longer than ``limit`` bytes (line end not counted).
+
+    Steps a window of ``limit + 1`` bytes at a time, each step ending after the window's last line end, so a
+    file of short lines costs one ``rfind`` per ``limit`` bytes and nothing is copied.
+    """
+    pos, size = 0, len(buf)
+    while size - pos > limit:
+        nl = buf.rfind(b"\n", pos, pos + limit + 1)
+        if nl < 0:
+            line = buf.count(b"\n", 0, pos) + 1
+            raise ExportError(f"line {line} is longer than {limit:,} bytes; an export line is at most "
+                              f"{limit:,} bytes", path=name, line=line,
+                              hint="the file is not an export of one row per line (line ends missing?)")
+        pos = nl + 1
 
 
 def find_header(buf: Text, profile: FeedProfile, name: str) -> Header:

@@ -2,18 +2,25 @@
 
 from __future__ import annotations
 
+import email
+import email.policy
+import socket
 import sqlite3
 import threading
 import time
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass
+from dataclasses import field as dc_field
 from pathlib import Path
-from typing import Any, Callable, Iterable
+from typing import Any
 
 import numpy as np
 import pytest
 from scipy import stats
 
-from monitor.alerts import outbox
 from monitor.alerts.alert import Alert
+from monitor.state import outbox
+from monitor.state.database import Database
 
 
 @pytest.fixture(autouse=True)
@@ -32,13 +39,10 @@ def no_leaked_threads() -> Iterable[None]:
 
 @pytest.fixture
 def db_path(tmp_path: Path) -> Path:
-    """A state database file with the outbox tables (as the daemon would create it)."""
-    path = tmp_path / "state.sqlite3"
-    conn = sqlite3.connect(path, isolation_level=None)
-    conn.execute("PRAGMA journal_mode=WAL")
-    outbox.ensure_schema(conn)
-    conn.close()
-    return path
+    """A state database file with the full schema, opened the daemon's way (``Database.open``)."""
+    db = Database.open(tmp_path / "state")
+    db.close()
+    return db.path
 
 
 def hold_data(lot: str = "A1001", line: str = "L2", product: str = "OAT-500", **over: Any) -> dict[str, Any]:
@@ -119,10 +123,6 @@ def states(db_path: Path) -> Callable[[], dict[tuple[str, str], str]]:
 
 
 # --- a real SMTP server on loopback (aiosmtpd) -----------------------------------------------------------
-import email
-import email.policy
-import socket
-from dataclasses import dataclass, field as dc_field
 
 
 def free_port() -> int:
@@ -174,7 +174,7 @@ class SmtpServer:
     def received(self) -> list[Received]:
         return self.handler.received
 
-    def start(self) -> "SmtpServer":
+    def start(self) -> SmtpServer:
         self.controller = self._controller_cls(self.handler, hostname="127.0.0.1", port=self.port, **self._kwargs)
         self.controller.start()
         return self

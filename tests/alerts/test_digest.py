@@ -17,9 +17,6 @@ def ts(iso: str) -> float:
 def seed_daemon_tables(db_path):
     """The daemon's verdicts and files tables with a day of invented Brackenfield Foods lots."""
     c = sqlite3.connect(db_path, isolation_level=None)
-    c.execute("CREATE TABLE IF NOT EXISTS verdicts(decided_at TEXT, line TEXT, product TEXT, lot TEXT, rule TEXT,"
-              " rule_version TEXT, verdict TEXT, n INTEGER, mean REAL, target REAL, unit TEXT, payload TEXT)")
-    c.execute("CREATE TABLE IF NOT EXISTS files(state TEXT, processed_at TEXT, path TEXT, reason TEXT)")
     rows = [
         ("2026-12-01T04:59:00+00:00", "L1", "JAM-340", "J0", "hold", 330.0, 340.0),   # before the period
         ("2026-12-01T07:00:00+00:00", "L1", "JAM-340", "J1", "pass", 341.0, 340.0),
@@ -30,13 +27,19 @@ def seed_daemon_tables(db_path):
         ("2026-12-02T05:00:00+00:00", "L2", "OAT-500", "A3", "hold", 490.0, 500.0),   # at the due time: next one
     ]
     for at, line, product, lot, verdict, mean, target in rows:
-        c.execute("INSERT INTO verdicts VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
-                  (at, line, product, lot, "r", "v1", verdict, 10, mean, target, "g", "{}"))
+        add_verdict(c, at, line, product, lot, verdict, 10, mean, target, "{}")
     for state, at, path, reason in [("done", "2026-12-01T07:00:00+00:00", "e/1.csv", ""),
                                     ("rejected", "2026-12-01T11:00:00+00:00", "e/bad.csv", "no lot column"),
                                     ("duplicate", "2026-12-01T12:00:00+00:00", "e/1b.csv", "same content")]:
-        c.execute("INSERT INTO files VALUES (?,?,?,?)", (state, at, path, reason))
+        c.execute("INSERT INTO files(sha256, path, size, mtime, first_seen_at, state, processed_at, reason)"
+                  " VALUES (?,?,?,?,?,?,?,?)", (path, path, 1, 0.0, at, state, at, reason))
     c.close()
+
+
+def add_verdict(c, at, line, product, lot, verdict, n, mean, target, payload, rule="r", version="v1"):
+    c.execute("INSERT INTO verdicts(decided_at, line, product, lot, rule, rule_version, rule_hash, verdict, n,"
+              " mean, target, unit, payload) VALUES (?,?,?,?,?,?,?,?,?,?,?,?,?)",
+              (at, line, product, lot, rule, version, version, verdict, n, mean, target, "g", payload))
 
 
 def settings(tmp_path, **over):
@@ -110,7 +113,7 @@ def test_digest_once_across_restart_and_catch_up(db_path, tmp_path):
 
 
 def test_schedule_adds_jobs_to_a_real_background_scheduler(db_path, tmp_path):
-    """schedule() adds the drain and digest jobs; the scheduler shuts down cleanly."""
+    """schedule() starts the delivery threads and adds the digest jobs; both shut down cleanly."""
     from apscheduler.schedulers.background import BackgroundScheduler
 
     sched = BackgroundScheduler(timezone="UTC")
@@ -118,7 +121,7 @@ def test_schedule_adds_jobs_to_a_real_background_scheduler(db_path, tmp_path):
     try:
         d.schedule(sched)
         ids = {j.id for j in sched.get_jobs()}
-        assert {"lotwarden-alerts-drain", "lotwarden-alerts-digest"} <= ids
+        assert {"lotwarden-alerts-digest", "lotwarden-alerts-digest-catch-up"} <= ids
         sched.start()
     finally:
         sched.shutdown(wait=True)
@@ -144,9 +147,8 @@ def test_digest_counts_the_average_quantity_screen(db_path, tmp_path):
     c = sqlite3.connect(db_path, isolation_level=None)
     for lot, values, r in (("Q1", met, rule), ("Q2", short, rule), ("Q3", met, plain)):
         v = evaluate(LotData(key=LotKey("L3", "OAT-500", lot), values=values, unit="g"), r)
-        c.execute("INSERT INTO verdicts VALUES (?,?,?,?,?,?,?,?,?,?,?,?)",
-                  ("2026-12-01T12:00:00+00:00", "L3", "OAT-500", lot, "oat", "v1", v.verdict, v.n, v.mean,
-                   503.0, "g", json.dumps(v.to_json())))
+        add_verdict(c, "2026-12-01T12:00:00+00:00", "L3", "OAT-500", lot, v.verdict, v.n, v.mean, 503.0,
+                    json.dumps(v.to_json()), rule="oat")
     c.close()
     dg = raise_digest_at_six(db_path, tmp_path)
     [oat] = {ln["line"]: ln["products"] for ln in dg["data"]["lines"]}["L3"]

@@ -67,13 +67,13 @@ def test_message_id_is_stable_for_the_same_alert(db_path, tmp_path, put, alert_f
     a = alert_factory(lot="M1")
     put(a, ["email"])
     drain(db_path, settings(srv.port, tmp_path), T0 + 1)
-    other = tmp_path / "second.sqlite3"
-    import sqlite3
-    from monitor.alerts import outbox
-    c = sqlite3.connect(other, isolation_level=None)
-    outbox.ensure_schema(c)
-    outbox.enqueue(c, a, ["email"])
-    c.close()
+    from monitor.state import outbox
+    from monitor.state.database import Database
+    second = Database.open(tmp_path / "second")
+    with second.write() as c:
+        outbox.enqueue(c, a, ["email"])
+    second.close()
+    other = second.path
     drain(other, settings(srv.port, tmp_path), T0 + 1)
     ids = [str(r.message["Message-ID"]).strip() for r in srv.received]
     assert len(ids) == 2 and ids[0] == ids[1] and ids[0].startswith("<lotwarden.")
@@ -129,18 +129,18 @@ def test_login_with_password_from_environment(db_path, tmp_path, put, alert_fact
 
 def test_starttls_with_self_signed_certificate(db_path, tmp_path, put, alert_factory, smtp_factory):
     """security = "starttls" upgrades the connection; the test's own CA file makes the certificate trusted."""
-    from cryptography import x509  # in the test extra: the STARTTLS path is always exercised
     import datetime as dt
     import ipaddress
     import ssl
 
+    from cryptography import x509  # in the test extra: the STARTTLS path is always exercised
     from cryptography.hazmat.primitives import hashes, serialization
     from cryptography.hazmat.primitives.asymmetric import ec
     from cryptography.x509.oid import NameOID
 
     key = ec.generate_private_key(ec.SECP256R1())
     name = x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, "127.0.0.1")])
-    now = dt.datetime.now(dt.timezone.utc)
+    now = dt.datetime.now(dt.UTC)
     cert = (x509.CertificateBuilder().subject_name(name).issuer_name(name).public_key(key.public_key())
             .serial_number(x509.random_serial_number()).not_valid_before(now - dt.timedelta(days=1))
             .not_valid_after(now + dt.timedelta(days=1))
@@ -180,7 +180,7 @@ def test_outage_then_recovery_delivers_each_once_in_order(db_path, tmp_path, put
     d = Dispatcher(db_path, s, seed=3)
     try:
         lots = [f"O{i}" for i in range(6)]
-        for i, lot in enumerate(lots[:3]):
+        for lot in lots[:3]:
             put(alert_factory(lot=lot), ["email"])
         assert d.drain(now=T0 + 10) == 0            # connection refused → retry later
         for lot in lots[3:]:

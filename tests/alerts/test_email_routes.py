@@ -96,8 +96,8 @@ def test_verdict_changed_reaches_the_route_of_the_verdict_it_replaces(db_path, t
                                   "reason": "mean below target", "rule": "oat-500", "rule_version": "3f2a9c1d",
                                   "n": 6, "mean": 497.0, "p_value": 0.001},
                         why="14 late values from archive/2026-12-01/L2-late.csv reopened the lot")
-    put(Alert(kind="verdict-changed", dedup_key="verdict-changed|L2|OAT-500|C1|1", created_at="2026-12-01T22:00:00+00:00",
-              data=data, line="L2", product="OAT-500", lot="C1"), ["email"])
+    put(Alert(kind="verdict-changed", dedup_key="verdict-changed|L2|OAT-500|C1|1",
+              created_at="2026-12-01T22:00:00+00:00", data=data, line="L2", product="OAT-500", lot="C1"), ["email"])
     assert drain_all(db_path, route_settings(srv.port, tmp_path, "replace_default = true"), T0 + 1) == 1
     assert srv.received[0].rcpt_tos == [LEAD]
     subject = str(srv.received[0].message["Subject"])
@@ -127,7 +127,7 @@ def test_long_subject_folds_without_leading_space(db_path, tmp_path, put, alert_
     assert head[start].strip().lower() != b"subject:"                # text on the header's first line
     lines = [head[start]]
     for ln in head[start + 1:]:
-        if not ln[:1] in (b" ", b"\t"):
+        if ln[:1] not in (b" ", b"\t"):
             break
         lines.append(ln)
     assert all(len(ln) <= 78 for ln in lines), lines

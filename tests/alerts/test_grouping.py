@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import dataclasses
 import re
+from datetime import UTC
 
 from monitor.alerts.dispatch import Dispatcher
 from monitor.alerts.grouping import Pacing, PendingRow, plan_batches
@@ -13,8 +14,8 @@ T0 = 1_796_162_400.0          # 2026-12-01T22:00:00+00:00
 
 
 def iso(t: float) -> str:
-    from datetime import datetime, timezone
-    return datetime.fromtimestamp(t, timezone.utc).isoformat(timespec="seconds")
+    from datetime import datetime
+    return datetime.fromtimestamp(t, UTC).isoformat(timespec="seconds")
 
 
 def mail_settings(port: int, **over) -> AlertSettings:

@@ -5,7 +5,8 @@ from __future__ import annotations
 from email import message_from_bytes
 from email.policy import SMTP, default
 
-from hypothesis import given, settings, strategies as st
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from monitor.alerts.alert import Alert
 from monitor.alerts.compose import build_message
@@ -15,7 +16,7 @@ from monitor.alerts.templates import TemplateSet
 TEMPLATES = TemplateSet.load()
 HEADERS = {"subject", "from", "to", "date", "message-id", "auto-submitted", "mime-version", "content-type"}
 # text rich in what breaks headers: CR, LF, NUL, Unicode line separators, encoded-word pieces, colons
-NASTY = st.lists(st.sampled_from(list("ab:=?_Q ") + ["\r", "\n", "\x00", "\x0b", "\u2028", "\u0085",
+NASTY = st.lists(st.sampled_from([*"ab:=?_Q ", "\r", "\n", "\x00", "\x0b", "\u2028", "\u0085",
                                                      "=?utf-8?q?", "?=", "=0A", "Bcc: x@evil.example"]),
                  max_size=30).map("".join)
 

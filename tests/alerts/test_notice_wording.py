@@ -151,7 +151,7 @@ def test_counts_agree_with_their_nouns(hold_factory):
 
 def test_excluded_rows_of_a_real_lot_are_shown_per_reason():
     """A lot with NaN rows judged by the engine shows its exclusions from Verdict.to_json()."""
-    lot = LotData(key=KEY, values=np.array(FIRST + [np.nan, np.nan]), unit="g",
+    lot = LotData(key=KEY, values=np.array([*FIRST, np.nan, np.nan]), unit="g",
                   excluded_by={"not_a_number": 1, "dropped_value": 1})
     r = render("hold", evaluate(lot, RULE).to_json())
     assert "Excluded:   2 rows of the lot without a usable value, left out (not a number 1, dropped value 1)" in r.text

@@ -30,7 +30,8 @@ def test_minimal_config_parses_with_defaults():
     s = parse(BASE)
     assert s.channels == ("log", "email")
     assert s.log.path == Path("/srv/lw/log/alerts.jsonl")
-    assert s.email.retry_max_seconds == 60.0 and s.group_window_seconds == 60.0   # documented defaults (ALERTS_KEYS / EMAIL_KEYS): 60 s
+    # documented defaults (ALERTS_KEYS / EMAIL_KEYS): 60 s
+    assert s.email.retry_max_seconds == 60.0 and s.group_window_seconds == 60.0
 
 
 def test_password_in_config_is_refused_with_reason():

@@ -63,7 +63,7 @@ def test_grouping_and_order_match_pandas_groupby() -> None:
     got = assemble_lots(exports, lambda p: rule)
     ref = pd.concat(frames, ignore_index=True).groupby(["line", "product", "lot"], sort=False)
     assert [(a.data.key.line, a.data.key.product, a.data.key.lot) for a in got] == list(ref.groups)
-    for a, (_, g) in zip(got, ref):
+    for a, (_, g) in zip(got, ref, strict=True):
         assert a.problem is None and a.rule is rule
         assert _vals(a.data) == g["value"].tolist()          # same floats, same order
         assert a.data.heads == tuple(g["head"])
@@ -74,7 +74,8 @@ def test_grouping_and_order_match_pandas_groupby() -> None:
 def test_units_are_converted_into_the_rule_unit() -> None:
     """kg and oz values under a g rule are multiplied by 1000 and 28.349523125 (NIST SP 811, appendix B);
     a value without a unit is taken as g and the lot says unit_assumed."""
-    exp = _export("/drop/a.csv", {"lot": ["K", "K", "Z", "Z", "N", "N"], "value": [0.5, 0.502, 17.6, 17.7, 499.0, 501.0],
+    exp = _export("/drop/a.csv", {"lot": ["K", "K", "Z", "Z", "N", "N"],
+                                  "value": [0.5, 0.502, 17.6, 17.7, 499.0, 501.0],
                                   "unit": ["kg", "kg", "oz", "oz", "", ""]})
     rule = Rule.adhoc(target=500.0, unit="g")
     lots = {a.data.key.lot: a for a in assemble_lots([exp], lambda p: rule)}

@@ -48,7 +48,7 @@ def test_df_and_p_just_below_alpha(tmp_path: Path) -> None:
     r = lotwarden("check", str(f), "--target", "500", "--unit", "g", "--alpha", "0.01", "--no-normality-gate")
     assert r.code == 1, r.err
     head, row = _header(r.out), _row(r.out, "A1")
-    cell = dict(zip(head, row))
+    cell = dict(zip(head, row, strict=False))
     assert cell["df"] == "30"                                   # n - 1 = 30 (JSON prints 30.0)
     assert cell["verdict"] == "HOLD"
     shown, side, alpha = cell["p vs alpha"].split()
@@ -91,7 +91,7 @@ def test_table_has_no_none_or_nan_and_marks_assumed_unit_and_excluded(tmp_path: 
     assert r.code == 1, r.err
     assert "None" not in r.out
     head = _header(r.out)
-    cells = {lot: dict(zip(head, _row(r.out, lot))) for lot in ("G1", "S1", "R1", "U1", "U2")}
+    cells = {lot: dict(zip(head, _row(r.out, lot), strict=False)) for lot in ("G1", "S1", "R1", "U1", "U2")}
     for lot, row in cells.items():           # a reason may quote a raw cell ('nan'); the numbers never show it
         assert not {"nan", "NaN", "None", "inf", ""} & set(row.values()), (lot, row)
         assert len(row) == len(head), (lot, row)

@@ -104,7 +104,7 @@ def intake_env(tmp_path: Path, clock: StepClock):
     """(config, store, intake, drop folder) on real files; the store is closed after the test."""
     from monitor.daemon.config import load_config, load_rule_set
     from monitor.daemon.intake import Intake
-    from monitor.daemon.store import Store
+    from monitor.state.database import Database as Store
 
     cfg = load_config(write_setup(tmp_path, extra="""
         [profiles.l3-juice-gross]

@@ -119,11 +119,12 @@ def test_load_rule_set_reads_the_rules_folder(tmp_path: Path, make_setup) -> Non
 
 
 def test_accepts_filters_bare_names(tmp_path: Path, make_setup) -> None:
-    """include/ignore match the bare file name: hidden, temporary and reason files are never taken."""
+    """include/ignore match the bare file name: hidden, temporary, marker and reason files are never taken."""
     w = load_config(make_setup(tmp_path)).watch
     assert w.accepts("L1_OAT-500_20261201.csv")
     assert w.accepts("export.TXT") is False  # fnmatchcase: patterns are case-sensitive
-    for name in (".L1.csv", "L1.csv.tmp", "L1.csv.part", "~L1.csv", "L1.csv.swp", "L1.csv.reason.txt", "L1.xlsx"):
+    for name in (".L1.csv", "L1.csv.tmp", "L1.csv.part", "~L1.csv", "L1.csv.swp", "L1.csv.reason.txt", "L1.xlsx",
+                 "L1.csv.done"):
         assert not w.accepts(name), name
 
 

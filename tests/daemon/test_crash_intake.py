@@ -20,7 +20,7 @@ DRIVER = textwrap.dedent("""
     import sys
     from monitor.daemon.config import load_config, load_rule_set
     from monitor.daemon.intake import Intake
-    from monitor.daemon.store import Store
+    from monitor.state.database import Database as Store
 
     if len(sys.argv) > 2 and sys.argv[2].endswith("-w2"):  # two-row insert windows: a file is many inserts
         from monitor.daemon import accumulate

@@ -33,7 +33,7 @@ def test_demo_exits_0_and_prints_the_story(tmp_path):
     assert not list((work / "drop").iterdir())
     kept = [p.name for p in (work / "state").rglob("*") if p.is_file() and p.parent.parent.name in
             ("archive", "quarantine") and not p.name.endswith(".reason.txt")]
-    assert sorted(kept) == sorted(samples + [f"resent-{samples[0]}"])
+    assert sorted(kept) == sorted([*samples, f"resent-{samples[0]}"])
     # every alert in the log is a JSON object with a kind
     for raw in (work / "state" / "alerts.jsonl").read_text().splitlines():
         assert json.loads(raw)["kind"]

@@ -159,7 +159,7 @@ def test_a_batch_gives_the_same_result_as_one_by_one(intake_env, tmp_path: Path,
     """process_batch (one commit) stores the same values, lots and alerts as process on each file in turn."""
     from monitor.daemon.config import load_config, load_rule_set
     from monitor.daemon.intake import Intake
-    from monitor.daemon.store import Store
+    from monitor.state.database import Database as Store
 
     cfg, store, intake, drop = intake_env
     specs = {"1.csv": oat("OAT-24A101", [500.0, 501.0, 502.0]), "2.csv": oat("OAT-24A101", [503.0, 499.0]),

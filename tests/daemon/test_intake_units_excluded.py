@@ -29,7 +29,7 @@ def env(tmp_path: Path, clock, make_setup):
     """(config, store, intake) with the OAT-500 (g) and JUICE-1L (mL) rules and the two profiles above."""
     from monitor.daemon.config import load_config, load_rule_set
     from monitor.daemon.intake import Intake
-    from monitor.daemon.store import Store
+    from monitor.state.database import Database as Store
 
     cfg = load_config(make_setup(tmp_path, extra=PROFILES))
     store = Store.open(cfg.state.folder)
@@ -187,7 +187,7 @@ def test_a_database_of_the_first_schema_opens_and_its_lots_are_judged(tmp_path: 
     open lot stored then is judged with its NULL value counted as not_finite."""
     from monitor.daemon.config import load_config, load_rule_set
     from monitor.daemon.intake import Intake
-    from monitor.daemon.store import Store
+    from monitor.state.database import Database as Store
 
     cfg = load_config(make_setup(tmp_path))
     Path(cfg.state.folder).mkdir(parents=True)
@@ -221,7 +221,7 @@ def test_a_database_of_the_first_schema_opens_and_its_lots_are_judged(tmp_path: 
         store.close()
     again = Store.open(cfg.state.folder)   # opening it a second time changes nothing
     try:
-        assert again.conn.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone() == ("2",)
+        assert again.conn.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone() == ("3",)
     finally:
         again.close()
 

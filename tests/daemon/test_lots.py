@@ -5,8 +5,7 @@ from __future__ import annotations
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from monitor.daemon.lots import (END_MARKER, NEXT_LOT, Closure, Marker, Segment, find_runs, idle_lots,
-                                 plan_file)
+from monitor.daemon.lots import END_MARKER, NEXT_LOT, Closure, Marker, Segment, find_runs, idle_lots, plan_file
 from monitor.lot import LotKey
 
 A = LotKey("L1", "OAT-500", "OAT-24A101")

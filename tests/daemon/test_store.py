@@ -11,7 +11,8 @@ import pytest
 
 from monitor.alerts.alert import Alert
 from monitor.alerts import outbox
-from monitor.daemon.store import DB_NAME, Store, utc_iso
+from monitor.state.database import DB_NAME, utc_iso
+from monitor.state.database import Database as Store
 
 
 def _columns(conn: sqlite3.Connection, table: str) -> set[str]:

@@ -1,0 +1,1 @@
+"""The state layer: the one package that owns the database (connection, transactions, schema, repositories)."""
