@@ -12,20 +12,20 @@ import argparse
 import multiprocessing as mp
 import resource
 import socket
-import sqlite3
 import sys
 import tempfile
 import time
 from collections import Counter
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
 
-from monitor.alerts import outbox
 from monitor.alerts.alert import Alert
 from monitor.alerts.dispatch import Dispatcher
 from monitor.alerts.settings import AlertSettings, EmailSettings, LogSettings, Route
+from monitor.state import outbox
+from monitor.state.database import Database
 
 LINES = {"L1": ("JAM-340", 340.0), "L2": ("OAT-500", 500.0), "L3": ("JUICE-1L", 1000.0)}
 T0 = 1_796_162_400.0
@@ -56,20 +56,18 @@ def burst(n: int, seed: int = 20261201) -> list[Alert]:
                 "power": 0.99, "n_for_power": 9, "verdict": "hold", "reason": "mean below target", "heads": [],
                 "values": values.tolist()}
         out.append(Alert(kind="hold", dedup_key=f"hold|{line}|{product}|B{i:04d}|b1",
-                         created_at=datetime.fromtimestamp(T0, timezone.utc).isoformat(), data=data, line=line,
+                         created_at=datetime.fromtimestamp(T0, UTC).isoformat(), data=data, line=line,
                          product=product, lot=f"B{i:04d}"))
     return out
 
 
-def fill(db: Path, alerts: list[Alert], channels: tuple[str, ...]) -> None:
-    conn = sqlite3.connect(db, isolation_level=None)
-    conn.execute("PRAGMA journal_mode=WAL")
-    outbox.ensure_schema(conn)
-    conn.execute("BEGIN IMMEDIATE")
-    for a in alerts:
-        outbox.enqueue(conn, a, channels)
-    conn.execute("COMMIT")
-    conn.close()
+def fill(folder: Path, alerts: list[Alert], channels: tuple[str, ...]) -> Path:
+    """A state database in ``folder`` (built the daemon's way) holding ``alerts`` for ``channels``; its path."""
+    with Database.open(folder) as db:
+        with db.write() as conn:
+            for a in alerts:
+                outbox.enqueue(conn, a, channels)
+        return db.path
 
 
 def drain_all(db: Path, settings: AlertSettings) -> float:
@@ -111,7 +109,7 @@ def main(argv: list[str] | None = None) -> int:
     received: list[tuple[str, list[str], int]] = []
 
     class Sink:
-        async def handle_DATA(self, server, session, envelope):  # noqa: N802 (aiosmtpd's hook name)
+        async def handle_DATA(self, server, session, envelope):
             received.append((envelope.mail_from, list(envelope.rcpt_tos), len(envelope.content)))
             return "250 OK"
 
@@ -122,9 +120,8 @@ def main(argv: list[str] | None = None) -> int:
     try:
         with tempfile.TemporaryDirectory() as tmp:
             root = Path(tmp)
-            base_db, mail_db = root / "baseline.sqlite3", root / "mail.sqlite3"
-            fill(base_db, alerts, ("log",))
-            fill(mail_db, alerts, ("email",))
+            base_db = fill(root / "baseline", alerts, ("log",))
+            mail_db = fill(root / "mail", alerts, ("email",))
             base_s, base_peak = drain_in_child(base_db, AlertSettings(log=LogSettings(path=root / "alerts.jsonl")))
             em = EmailSettings(host="127.0.0.1", port=port, security="none", sender="lotwarden@brackenfield.example",
                                recipients=("qa@brackenfield.example",), timeout=30,

@@ -300,7 +300,7 @@ def _head_breakdown(lots: list[LotData], raw_len: np.ndarray, rule: Rule) -> dic
     rows = [HeadSummary(head=h, n=c, mean=m, sd=s if c >= 2 else None, offset=m - rule.target,
                         p_value=p if t else None)
             for h, c, m, s, p, t in zip(labels[keys % labels.shape[0]].tolist(), hn.tolist(), hmean.tolist(),
-                                        sd.tolist(), res["p_value"].tolist(), testable.tolist())]
+                                        sd.tolist(), res["p_value"].tolist(), testable.tolist(), strict=True)]
     bounds = np.searchsorted(keys // labels.shape[0], np.arange(len(idx) + 1)).tolist()
     return {i: tuple(rows[bounds[j]:bounds[j + 1]]) for j, i in enumerate(idx)}
 

@@ -280,6 +280,9 @@ ALERTS_EMAIL = Section("alerts.email", "`[alerts.email]`", (
     Key("ca_file", "string", None, None,
         "PEM file of CA certificates to trust for starttls/tls (default: system store)", path=True),
     Key("timeout", "number", 20.0, POSITIVE, "seconds to wait for the server on connect and each command (> 0)"),
+    Key("deadline_seconds", "number", 60.0, POSITIVE,
+        "overall deadline of one SMTP exchange (connect, banner, EHLO, STARTTLS, AUTH and one message), seconds "
+        "(> 0): a server answering a byte at a time is cut off and retried later"),
     Key("retry_first_seconds", "number", 2.0, POSITIVE,
         "first retry delay after a connection error or 4xx reply (> 0)"),
     Key("retry_max_seconds", "number", 60.0, POSITIVE, "cap of the jittered exponential retry delay (> 0)"),

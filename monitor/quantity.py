@@ -209,9 +209,7 @@ def _tne_base(q: Decimal) -> tuple[Decimal, str]:
     """TNE in g or mL for a nominal ``q`` in g or mL, and the note naming a non-Directive source."""
     if not (TABLE_MIN <= q <= TABLE_MAX):
         raise ValueError(f"outside the published TNE table (5 g/mL to 25 kg/L): {q.normalize():f} g or mL")
-    for upper, kind, amount in _TNE_TABLE:
-        if q <= upper:
-            break
+    _upper, kind, amount = next((row for row in _TNE_TABLE if q <= row[0]), _TNE_TABLE[-1])
     note = _SOURCE_UK if q > DIRECTIVE_MAX else ""
     if kind == "abs":
         return amount, note

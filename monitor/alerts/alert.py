@@ -15,6 +15,9 @@ ALERT_KINDS = (
     "file-duplicate",    # the same content arrived again; not counted twice
     "file-revised",      # a known path arrived with different content
     "delivery-failing",  # a channel gave up on an alert (5xx / dead)
+    "file-changed-after-take",  # an archived export grew or changed after it was taken: new rows not judged
+    "fault-persisting",  # a fault (full disk, unusable archive, ...) has lasted minutes; files wait, none lost
+    "fault-cleared",     # ... and has gone
     "daemon-started",
     "daemon-stopped",
     "digest",            # the daily summary

@@ -29,7 +29,7 @@ class Report:
     ``delivered``: done (``reason`` may note e.g. refused recipients); ``retry``: try again after a backoff
     (the dispatcher stops handing this channel anything until then); ``failed``: permanent, with ``reason``;
     ``suppressed``: deliberately not sent (``reason`` says why). ``booking`` is the channel's own
-    bookkeeping, run in the same transaction that marks the alerts delivered.
+    bookkeeping, run in the same transaction that marks the alerts (whatever the status).
     """
 
     alert_ids: tuple[int, ...]

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import io
 import math
-from typing import Sequence
+from collections.abc import Sequence
 
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
@@ -37,8 +37,9 @@ def render_chart(values: Sequence[float], *, target: float | None, mean: float |
     if lo is not None and hi is not None:
         ax.axhspan(lo, hi, color="#b3261e", alpha=0.12, label="confidence interval")
     elif lo is not None or hi is not None:
-        ax.axhline(lo if lo is not None else hi, color="#b3261e", linewidth=0.8, linestyle=":",
-                   label="confidence bound")
+        bound = lo if lo is not None else hi
+        assert bound is not None
+        ax.axhline(bound, color="#b3261e", linewidth=0.8, linestyle=":", label="confidence bound")
     ax.set_xlabel("measurement (arrival order)")
     ax.set_ylabel(unit or "value")
     if title:

@@ -3,9 +3,9 @@
 from __future__ import annotations
 
 import logging
+from datetime import UTC, datetime
 from email.message import EmailMessage
 from email.utils import format_datetime
-from datetime import datetime, timezone
 from typing import Any
 
 from monitor.alerts.alert import Alert
@@ -50,11 +50,14 @@ def render_with_fallback(kind: str, context: dict[str, Any], templates: Template
 
 
 def build_message(alerts: list[Alert], *, sender: str, recipients: tuple[str, ...], now: float, folded: bool,
-                  templates: TemplateSet, shipped: TemplateSet) -> EmailMessage:
-    """One message for ``alerts`` (its own kind's templates for one alert, the group templates for several)."""
+                  templates: TemplateSet, shipped: TemplateSet, mid: str | None = None) -> EmailMessage:
+    """One message for ``alerts`` (its own kind's templates for one alert, the group templates for several).
+
+    ``mid``: the Message-ID to use (a message repeated as recorded); by default the one of these alerts."""
     charts: list[tuple[str, bytes]] = []
     items: list[dict[str, Any]] = []
-    mid = message_id([a.dedup_key for a in alerts], sender.rpartition("@")[2])
+    if mid is None:
+        mid = message_id([a.dedup_key for a in alerts], sender.rpartition("@")[2])
     token = mid.strip("<>").split("@")[0]
     for i, a in enumerate(alerts):
         png = chart_for(a) if len(charts) < MAX_CHARTS else None
@@ -64,7 +67,7 @@ def build_message(alerts: list[Alert], *, sender: str, recipients: tuple[str, ..
             charts.append((cid, png))
         items.append({"kind": a.kind, "dedup_key": a.dedup_key, "created_at": a.created_at, "line": a.line,
                       "product": a.product, "lot": a.lot, "data": a.data, "chart_cid": cid})
-    generated = datetime.fromtimestamp(now, timezone.utc)
+    generated = datetime.fromtimestamp(now, UTC)
     ctx = message_context(items, folded=folded, generated_at=generated.isoformat(timespec="seconds"))
     kind = alerts[0].kind if len(alerts) == 1 and not folded else "group"
     rendered = render_with_fallback(kind, ctx, templates, shipped)

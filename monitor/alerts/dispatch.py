@@ -258,6 +258,8 @@ class Dispatcher:
             with write_tx(conn):
                 for rid in ids:
                     repo.mark_suppressed(conn, rid, name, report.reason)
+                if report.booking is not None:
+                    report.booking(conn)
             return 0
         if report.status == "retry":
             attempts = max((due[rid].attempts for rid in ids if rid in due), default=0)
@@ -267,6 +269,8 @@ class Dispatcher:
             with write_tx(conn):
                 for rid in ids:
                     repo.mark_retry(conn, rid, name, now + delay, report.reason)
+                if report.booking is not None:
+                    report.booking(conn)
             log.warning("%d alert(s) on %s: %s; retry in %.1f s", len(ids), name, report.reason, delay)
             return 0
         others = tuple(c for c in self.settings.channels if c != name)
@@ -276,6 +280,8 @@ class Dispatcher:
                 alert = due[rid].alert if rid in due else None
                 if alert is not None and alert.kind != "delivery-failing" and others:
                     repo.enqueue(conn, failing_alert(name, alert, report.reason, now), others)
+            if report.booking is not None:
+                report.booking(conn)
         for rid in ids:
             log.error("alert %r dead on %s: %s", due[rid].alert.dedup_key if rid in due else rid, name,
                       report.reason)

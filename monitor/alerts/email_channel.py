@@ -44,16 +44,14 @@ def classify(exc: BaseException, secret: str | None) -> NoReturn:
     raise RetryLater(redact(f"{type(exc).__name__}: {exc}", secret)) from None
 
 
-DEADLINE_FACTOR = 3.0   # an exchange may take this many times the per-read timeout, all steps together
-
-
 def exchange_deadline(settings: EmailSettings) -> float:
-    """Seconds one SMTP exchange (connect, banner, EHLO, STARTTLS, AUTH and one message) may take in all.
+    """Seconds one SMTP exchange (connect, banner, EHLO, STARTTLS, AUTH and one message) may take in all:
+    ``alerts.email.deadline_seconds``.
 
     smtplib's ``timeout`` bounds each socket read only: a server that dribbles a byte now and then would
-    keep a session alive for ever (RELIABILITY: smtplib timeouts are per operation).
+    keep a session alive for ever (smtplib timeouts are per operation).
     """
-    return DEADLINE_FACTOR * settings.timeout
+    return settings.deadline_seconds
 
 
 class _Client(smtplib.SMTP):

@@ -6,9 +6,9 @@ the repeat holds to suppress; everything else waits for a later drain. No I/O he
 
 from __future__ import annotations
 
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
-from datetime import datetime
-from typing import Callable, Mapping, Sequence
+from datetime import UTC, datetime
 
 from monitor.alerts.alert import Alert
 
@@ -64,8 +64,7 @@ def epoch(iso: str) -> float:
     except (ValueError, AttributeError):
         return 0.0
     if dt.tzinfo is None:
-        from datetime import timezone
-        dt = dt.replace(tzinfo=timezone.utc)
+        dt = dt.replace(tzinfo=UTC)
     return dt.timestamp()
 
 

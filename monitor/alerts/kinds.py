@@ -114,3 +114,26 @@ def daemon_stopped(*, started_at: str, stopped_at: str, files: int) -> Alert:
 def digest(*, due_at: str, data: Mapping[str, Any], at: str) -> Alert:
     """The summary for the scheduled time ``due_at`` (ISO UTC)."""
     return Alert(kind="digest", dedup_key=f"digest|{due_at}", created_at=at, data=dict(data))
+
+
+# --- faults ------------------------------------------------------------------------------------------------
+def file_changed_after_take(*, file_id: int, detail: Mapping[str, Any], at: str) -> Alert:
+    """An archived export changed after it was taken (``detail``: sizes, bytes and lines added, message)."""
+    return Alert(kind="file-changed-after-take", dedup_key=f"file-changed-after-take|{file_id}", created_at=at,
+                 data=dict(detail))
+
+
+def fault_persisting(*, key: str, message: str, attempts: int, lasting_seconds: float, first_at: float,
+                     at: str) -> Alert:
+    """A fault of the daemon's surroundings has lasted long enough to tell people (once per occurrence)."""
+    return Alert(kind="fault-persisting", dedup_key=f"fault-persisting|{key}|{int(first_at)}", created_at=at,
+                 data={"key": key, "message": message, "attempts": attempts,
+                       "lasting_seconds": round(lasting_seconds, 1), "since": iso_utc(first_at)})
+
+
+def fault_cleared(*, key: str, message: str, attempts: int, lasted_seconds: float, first_at: float,
+                  at: str) -> Alert:
+    """A fault that was told (``fault-persisting``) has gone."""
+    return Alert(kind="fault-cleared", dedup_key=f"fault-cleared|{key}|{int(first_at)}", created_at=at,
+                 data={"key": key, "message": message, "attempts": attempts,
+                       "lasted_seconds": round(lasted_seconds, 1), "since": iso_utc(first_at)})

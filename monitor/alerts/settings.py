@@ -86,6 +86,7 @@ class EmailSettings:
     password_file: Path | None = None
     ca_file: Path | None = None
     timeout: float = ALERTS_EMAIL.default("timeout", float)
+    deadline_seconds: float = ALERTS_EMAIL.default("deadline_seconds", float)
     retry_first_seconds: float = ALERTS_EMAIL.default("retry_first_seconds", float)
     retry_max_seconds: float = ALERTS_EMAIL.default("retry_max_seconds", float)
     routes: tuple[Route, ...] = ()

@@ -8,18 +8,20 @@ so a bad edit raises ``TemplateError`` naming file and line and the caller keeps
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Mapping, Sequence
+from typing import Any
 
 import jinja2
 from jinja2.sandbox import SandboxedEnvironment
 
 from monitor.alerts.alert import ALERT_KINDS
 from monitor.errors import TemplateError
+from monitor.resources import shipped_templates_dir
 
-SHIPPED_DIR = Path(__file__).resolve().parents[2] / "config" / "templates"
-MESSAGE_KINDS = ALERT_KINDS + ("group",)
+SHIPPED_DIR = shipped_templates_dir()   # the checkout's config/templates, or the wheel's copy
+MESSAGE_KINDS = (*ALERT_KINDS, "group")
 PARTS = ("subject.txt", "body.txt", "body.html")
 CAUTION = ("lotwarden screens lots statistically; net-quantity compliance is decided under local "
            "weights-and-measures law by the competent authority.")
@@ -183,7 +185,7 @@ class TemplateSet:
                 self._render(f"{kind}.{part}", sample)
 
     @classmethod
-    def load(cls, operator_dir: Path | None = None, shipped_dir: Path = SHIPPED_DIR) -> "TemplateSet":
+    def load(cls, operator_dir: Path | None = None, shipped_dir: Path = SHIPPED_DIR) -> TemplateSet:
         """Read the shipped set, let same-named files in ``operator_dir`` win, check everything."""
         sources: dict[str, str] = {}
         origins: dict[str, Path] = {}

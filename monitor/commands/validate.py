@@ -31,11 +31,11 @@ def run(args: argparse.Namespace) -> int:
     for r in rules:
         print(f"    {r.name} @ {r.version}: products {', '.join(r.products)}; target {r.target:g} {r.unit}, "
               f"{r.alternative}, alpha {r.alpha:g}, min n {r.min_n}, idle {r.idle_minutes:g} min")
-    names = [getattr(p, "name", "?") for p in config.profiles]
+    names = [p.name for p in config.profiles]
     print(f"  profiles: {len(config.profiles)}" + (f" ({', '.join(names)})" if names else ""))
     channels = config.alerts.channels
     print(f"  alert channels: {', '.join(channels) if channels else 'none (alerts stay in the outbox)'}")
-    templates = getattr(config.alerts, "templates", None)
+    templates = config.alerts.templates
     if templates is not None:
         from monitor.alerts.templates import TemplateSet
 

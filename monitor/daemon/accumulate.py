@@ -22,6 +22,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from monitor.daemon import judge, lots, rejudge
+from monitor.ingest.profile import FeedProfile
+from monitor.ingest.reader import Export
 from monitor.lot import LotKey, Verdict
 from monitor.rulebook import Rule, match_rule
 from monitor.state import audit
@@ -54,7 +56,7 @@ def lot_name(key: LotKey) -> str:
     return "/".join(x or "-" for x in (key.line, key.product, key.lot))
 
 
-def add_values(conn: Connection, how: Judging, file_id: int, export: Any, density: float | None,
+def add_values(conn: Connection, how: Judging, file_id: int, export: Export, density: float | None,
                now: datetime, tally: Tally, after_first_insert: Callable[[], None] = lambda: None, *,
                path: str = "") -> int:
     """Append an export's rows to their lots and close / judge lots as the rows and markers say; return
@@ -283,7 +285,7 @@ def close_lot(conn: Connection, how: Judging, key: LotKey, reason: str, at: str,
     return verdict
 
 
-def add_summaries(conn: Connection, how: Judging, file_id: int, path: str, export: Any,
+def add_summaries(conn: Connection, how: Judging, file_id: int, path: str, export: Export,
                   density: float | None, at: str, tally: Tally) -> int:
     """Each summary row is a lot of its own, judged at once from n / mean / sd; a record the reader found
     unusable (its ``problem`` column says why; no column = none) is a `review` naming the problem."""
@@ -369,21 +371,12 @@ def finite_list(values: np.ndarray) -> list[float | None]:
     return out.tolist()
 
 
-def end_markers(export: Any) -> list[lots.Marker]:
+def end_markers(export: Export) -> list[lots.Marker]:
     """End-of-lot markers of an export: the reader gives (source line, lot code the marker ends) pairs."""
-    m = getattr(export, "end_of_lot", None)
-    out: list[lots.Marker] = []
-    for item in m or ():
-        if isinstance(item, (int, np.integer)):
-            out.append(lots.Marker(int(item)))
-        elif isinstance(item, (tuple, list)) and item:
-            out.append(lots.Marker(int(item[0]), lot=None if len(item) < 2 or item[1] in (None, "") else str(item[1])))
-    return out
+    return lots.markers_of(export.end_of_lot)
 
 
-def density_of(export: Any, profile: Any) -> float | None:
+def density_of(export: Export, profile: FeedProfile | None) -> float | None:
     """g/mL for mass <-> volume: the export's own, else the feed profile's."""
-    d = getattr(export, "density", None)
-    if d is None:
-        d = getattr(profile, "density", None)
+    d = export.density if export.density is not None else (profile.density if profile is not None else None)
     return None if d is None else float(d)

@@ -11,16 +11,16 @@ from __future__ import annotations
 import errno
 import os
 import shutil
-from datetime import datetime, timezone
+from collections.abc import Callable
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Callable
 
 REASON_SUFFIX = ".reason.txt"
 
 
 def dated_folder(root: Path, moment: datetime) -> Path:
     """``root/YYYY-MM-DD`` for the UTC date of ``moment``."""
-    return root / moment.astimezone(timezone.utc).strftime("%Y-%m-%d")
+    return root / moment.astimezone(UTC).strftime("%Y-%m-%d")
 
 
 def free_name(folder: Path, name: str, taken: Callable[[Path], bool] = lambda p: False) -> Path:
@@ -74,3 +74,11 @@ def write_reason(target: Path, text: str) -> Path:
         os.fsync(fh.fileno())
     os.replace(tmp, reason)
     return reason
+
+
+def move_beside(src: Path, placed: Path) -> Path:
+    """Move ``src`` (e.g. an export's marker file) into the folder where ``placed`` now lies, under a free
+    name (never overwrites); return where it went."""
+    dst = free_name(placed.parent, src.name)
+    move_file(src, dst)
+    return dst

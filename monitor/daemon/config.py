@@ -114,8 +114,8 @@ def parse_config(table: Mapping[str, Any], *, source: Path, content_hash: str = 
     st = read(STATE, top["state"], source=src, base=base)
     state = StateSettings(folder=st["folder"], archive=st["archive"] or st["folder"] / "archive",
                           quarantine=st["quarantine"] or st["folder"] / "quarantine")
-    for key in ("archive", "quarantine"):
-        if _same(getattr(state, key), watch.folder):
+    for key, folder in (("archive", state.archive), ("quarantine", state.quarantine)):
+        if _same(folder, watch.folder):
             raise ConfigError(f"state.{key} is the drop folder itself", path=src, key=f"state.{key}",
                               hint="use a folder of its own so processed files are not taken again")
     alerts = parse_alerts(top["alerts"], source=src, base_dir=base)

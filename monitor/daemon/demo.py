@@ -19,12 +19,16 @@ import time
 import tomllib
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from email.message import EmailMessage
 from pathlib import Path
 from typing import Any, TextIO
 
+from monitor.daemon.intake import FileOutcome
 from monitor.daemon.service import Daemon
+from monitor.lot import Verdict
 from monitor.polling import wait_until
 from monitor.resources import demo_feeds_dir, demo_rules_dir, require_dir, sample_config_path
+from monitor.state import database, outbox, verdicts
 
 SETTLE_SECONDS = 0.5
 START_SECONDS = 60.0   # a first start after install compiles and imports numpy, scipy, pandas, matplotlib
@@ -147,7 +151,7 @@ class PrintingSink:
         return "250 OK"
 
 
-def save_message(raw: bytes, msg: Any, folder: Path, stem: str) -> list[Path]:
+def save_message(raw: bytes, msg: EmailMessage, folder: Path, stem: str) -> list[Path]:
     """Write ``raw`` as ``stem.eml``, its HTML part as ``stem.html`` and its PNG parts as ``stem-chart-K.png``
     in ``folder`` (names made here, never from message data); the HTML's ``cid:`` links point at the PNGs."""
     folder.mkdir(parents=True, exist_ok=True)
@@ -185,9 +189,9 @@ class Story:
         with self.lock:
             print(f"[{time.monotonic() - self.t0:5.1f}s] {text}", file=self.out, flush=True)
 
-    def on_event(self, kind: str, details: dict[str, Any]) -> None:
+    def on_event(self, kind: str, details: dict[str, object]) -> None:
         if kind == "file-finished":
-            self.say(f"file finished, taken: {Path(details['path']).name}")
+            self.say(f"file finished, taken: {Path(str(details['path'])).name}")
         elif kind == "file-processed":
             self.say(f"  -> {describe_outcome(details.get('outcome'))}")
         elif kind == "lots-closed":
@@ -196,32 +200,23 @@ class Story:
             self.say(f"config rejected: {details.get('error')}")
 
 
-def describe_outcome(outcome: Any) -> str:
-    """A short text for an intake outcome, from whatever fields it carries."""
+def describe_outcome(outcome: object) -> str:
+    """A short text for an intake outcome (one file) or for the verdicts of closed lots (a list)."""
     if outcome is None:
         return "nothing"
     if isinstance(outcome, (list, tuple)):
         return f"{len(outcome)} {'lot' if len(outcome) == 1 else 'lots'}" + "".join(
-            f"\n             {describe_verdict(o) if hasattr(o, 'verdict') else describe_outcome(o)}"
+            f"\n             {describe_verdict(o) if isinstance(o, Verdict) else describe_outcome(o)}"
             for o in outcome)
-    if hasattr(outcome, "describe"):
-        return str(outcome.describe())
-    parts = []
-    for name in ("state", "status", "kind", "n_values", "reason"):
-        v = getattr(outcome, name, None)
-        if v not in (None, "", ()):
-            parts.append(f"{name} {v}")
-    for v in getattr(outcome, "verdicts", ()) or ():
-        parts.append(describe_verdict(v))
-    return "; ".join(parts) if parts else str(outcome)
+    if isinstance(outcome, FileOutcome):
+        return outcome.describe()
+    return str(outcome)
 
 
-def describe_verdict(v: Any) -> str:
-    key = getattr(v, "key", None)
-    where = f"{key.line}/{key.product}/{key.lot}" if key is not None else "?"
-    mean = getattr(v, "mean", None)
-    mean_s = "-" if mean is None else f"{mean:.2f}"
-    return f"verdict {getattr(v, 'verdict', '?')} for {where} (n {getattr(v, 'n', '?')}, mean {mean_s})"
+def describe_verdict(v: Verdict) -> str:
+    where = f"{v.key.line}/{v.key.product}/{v.key.lot}"
+    mean_s = "-" if v.mean is None else f"{v.mean:.2f}"
+    return f"verdict {v.verdict} for {where} (n {v.n}, mean {mean_s})"
 
 
 class AlertFollower:
@@ -276,26 +271,19 @@ def drop_by_rename(src: Path, dest: Path) -> None:
 
 def pending_deliveries(db: Path, channel: str) -> int:
     """Deliveries still pending on ``channel`` (e-mail may wait for its grouping window; see the stop)."""
-    conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5)
     try:
-        return int(conn.execute("SELECT count(*) FROM deliveries WHERE state = 'pending' AND channel = ?",
-                                (channel,)).fetchone()[0])
+        with database.read_only(db) as conn:
+            return outbox.delivery_counts(conn).get((channel, "pending"), 0)
     except sqlite3.Error:
         return 0
-    finally:
-        conn.close()
 
 
-def summary_rows(db: Path) -> list[tuple[Any, ...]]:
-    conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=5)
-    try:
-        return conn.execute("SELECT line, product, lot, n, mean, target, unit, verdict, payload FROM verdicts"
-                            " ORDER BY line, product, id").fetchall()
-    finally:
-        conn.close()
+def summary_rows(db: Path) -> list[verdicts.ListedVerdict]:
+    with database.read_only(db) as conn:
+        return verdicts.listing(conn)
 
 
-def print_summary(rows: list[tuple[Any, ...]], say: Callable[[str], None]) -> None:
+def print_summary(rows: list[verdicts.ListedVerdict], say: Callable[[str], None]) -> None:
     say("")
     say("Lots and verdicts")
     head = f"{'line':<5} {'product':<10} {'lot':<12} {'n':>5} {'mean':>10} {'target':>8} {'unit':<4} verdict  reason"

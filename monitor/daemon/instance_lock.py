@@ -25,7 +25,7 @@ class InstanceLock:
         self._fd: int | None = fd
 
     @classmethod
-    def acquire(cls, folder: str | Path) -> "InstanceLock":
+    def acquire(cls, folder: str | Path) -> InstanceLock:
         """Take the folder's lock, or raise ConfigError naming the process that holds it."""
         path = Path(folder) / LOCK_NAME
         fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o644)

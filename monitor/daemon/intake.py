@@ -15,6 +15,14 @@ Then the files move (archive, or quarantine with ``<name>.reason.txt``); each mo
 write transaction (or ``flush``). A done file found in the drop folder after a crash is only moved, never
 counted again. Bad data never raises.
 
+Persistent faults (``monitor.daemon.faultlog``): a move that fails (archive / quarantine unusable, disk full) or
+a transaction the database refuses (full disk, I/O error) is one fault per place and kind, retried with
+backoff and logged once per backoff step; the file stays in the drop folder (outcome ``waiting``) and nothing
+of a failed transaction is kept. ``fault_alerts()`` hands out the lasting faults and their clearing.
+
+Files changed after they were taken (``monitor.daemon.aftertake``): ``check_taken`` (also run from ``flush``
+and ``close_idle``) looks at each archived file again for 15 minutes and records a change once.
+
 Test hook: ``LOTWARDEN_CRASH_AT=<point>[:<n>]`` makes the process SIGKILL itself at ``<point>`` for the
 ``n``-th file handed to this intake (default 1). Points: ``after-mark``, ``mid-values``, ``after-commit``
 (= ``before-archive``), ``after-archive``. Only the crash tests set it.
@@ -32,20 +40,24 @@ import threading
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
-from monitor.alerts import outbox
 from monitor.alerts.alert import Alert
-from monitor.daemon import accumulate, archive, judge
+from monitor.daemon import accumulate, aftertake, archive, judge
 from monitor.daemon.accumulate import Judging, Tally, lot_name
+from monitor.daemon.aftertake import ChangedFile
 from monitor.daemon.config import Config
+from monitor.daemon.faultlog import DB_FAULTS, FaultEvent, FaultLog, root_db_error
+from monitor.daemon.faults import FaultTracker, policy_from_env
 from monitor.daemon.watcher import entry_kind
 from monitor.errors import ExportError
+from monitor.ingest.profile import FeedProfile
+from monitor.ingest.reader import Export
 from monitor.lot import LotKey, Verdict
 from monitor.rulebook import RULE_KEYS, Rule, match_rule
-from monitor.state import audit, files
+from monitor.state import audit, files, outbox
 from monitor.state.database import Connection, Database, Savepoint, utc_iso
 
 log = logging.getLogger("lotwarden.intake")
@@ -55,13 +67,16 @@ CRASH_POINTS = ("after-mark", "mid-values", "after-commit", "before-archive", "a
 MAX_UNRECORDED_MOVES = 64
 MAX_ATTEMPTS = 3  # start-ups that may find a file still 'processing' before it is quarantined
 Clock = Callable[[], datetime]
+ChangedAlert = Callable[[ChangedFile, str], Alert]   # (change, ISO time) -> the alert stored with its record
+MAX_UNCLAIMED_CHANGES = 1000
 
 
 @dataclass(frozen=True)
 class FileOutcome:
     """What happened to one file. ``status``: taken | revision | duplicate | rejected | archived (a move
     left by a crash was finished) | vanished | unreadable | ignored (not a regular file: a symlink, FIFO,
-    device or socket is never opened for reading, nor moved)."""
+    device or socket is never opened for reading, nor moved) | waiting (a persistent fault — the state
+    database or the archive cannot be written — keeps the file in the drop folder for a later try)."""
 
     path: str
     status: str
@@ -103,8 +118,8 @@ class _Item:
     sha: str = ""
     file_id: int | None = None
     outcome: FileOutcome | None = None
-    export: Any = None
-    profile: Any = None
+    export: Export | None = None
+    profile: FeedProfile | None = None
     error: tuple[str, ExportError | None] | None = None
     move: tuple[Path, str] | None = None       # (planned target, state) once a move is due
     extra: dict[str, Any] = field(default_factory=dict)
@@ -136,6 +151,14 @@ class Intake:
         self._moved: list[tuple[str, str, int]] = []  # moves done, recorded with the next write transaction
         self._crash = _parse_crash(os.environ.get(CRASH_ENV, ""))
         self._recent = judge.RecentValues()
+        # persistent faults (archive unusable, disk full ...): keyed by where + kind, backoff, one log line per step
+        self._faults = FaultLog(policy_from_env(os.environ), lambda: self.clock().timestamp())
+        self._db_where = f"writing the state database {store.path}"
+        # files changed after they were taken (see monitor.daemon.aftertake)
+        self.changed_alert: ChangedAlert | None = None   # set by the service: the alert stored with each record
+        self._seen_after: dict[int, tuple[int, int]] = {}  # archived files looked at: (size, mtime_ns) seen
+        self._changes: list[ChangedFile] = []              # found by the periodic check, not yet handed out
+        self._last_check: datetime | None = None
 
     # -- reloads -------------------------------------------------------------------------------
     def set_rules(self, rules: Sequence[Rule]) -> None:
@@ -164,29 +187,42 @@ class Intake:
             for p in paths:
                 self._calls += 1
                 items.append(_Item(Path(os.path.abspath(p)), self._calls))
+            if not self._faults.ready(self._db_where):
+                # the state database failed a moment ago: wait out the backoff, leave the files where they are
+                return [self._db_waiting(it) for it in items]
             for it in items:
                 self._read_file(it)
             now = self.clock()
             live = [it for it in items if it.outcome is None]
+            try:
+                if live:
+                    # marks need not wait for the disk: a mark lost to a power cut leaves the file in the drop
+                    # folder, taken again; a duplicate's mark that is lost is found again as a duplicate
+                    with self._write(durable=False) as conn:
+                        for it in live:
+                            self._mark(conn, it, now)
+                    if any(it.outcome is not None and it.outcome.status == "duplicate" for it in live):
+                        self.store.sync()  # a duplicate's row and alert must outlive a power cut before it moves
+                for it in live:
+                    if it.outcome is None:
+                        self._maybe_crash("after-mark", it.call)
+                todo = [it for it in live if it.outcome is None]
+                for it in todo:
+                    self._parse(it)
+                self._settle(todo, now)
+            except DB_FAULTS as exc:
+                # a full disk, an I/O error, a database locked for longer than the busy timeout: nothing of
+                # the failed transaction is stored and nothing moves; every file stays for the next try
+                self._db_failed(exc, "storing " + ", ".join(it.path.name for it in live[:3])
+                                + (" …" if len(live) > 3 else ""))
+                return [it.outcome if it.outcome is not None and it.outcome.status in _READ_ONLY_OUTCOMES
+                        else self._db_waiting(it) for it in items]
             if live:
-                # marks need not wait for the disk: a mark lost to a power cut leaves the file in the drop
-                # folder, taken again; a duplicate's mark that is lost is found again as a duplicate
-                with self._write(durable=False) as conn:
-                    for it in live:
-                        self._mark(conn, it, now)
-                if any(it.outcome is not None and it.outcome.status == "duplicate" for it in live):
-                    self.store.sync()  # a duplicate's row and alert must outlive a power cut before it moves
-            for it in live:
-                if it.outcome is None:
-                    self._maybe_crash("after-mark", it.call)
-            todo = [it for it in live if it.outcome is None]
-            for it in todo:
-                self._parse(it)
-            self._settle(todo, now)
+                self._db_worked()
             for it in items:
                 if it.move is not None:
                     moved = self._finish_move(it.file_id or 0, it.path, *it.move, call=it.call)
-                    it.outcome = replace(it.outcome, moved_to=moved) if it.outcome else None
+                    it.outcome = self._after_move(it.outcome, it.move[0], moved) if it.outcome else None
             return [it.outcome or FileOutcome(str(it.path), "unreadable") for it in items]
 
     def _read_file(self, it: _Item) -> None:
@@ -283,6 +319,8 @@ class Intake:
                         self._mark_rejected(conn, it, now, at)
                     else:
                         self._take(conn, it, now, at)
+                except DB_FAULTS:  # the database itself failed (full disk ...): not this file's fault
+                    raise
                 except Exception as exc:  # a bug of ours on this file: undo its part, keep it safe, tell people
                     one_file.rollback()
                     self._recent.clear()
@@ -317,21 +355,22 @@ class Intake:
             if outbox.enqueue(conn, alert, how.channels):
                 tally.alerts.append(alert.dedup_key)
         export, file_id = it.export, int(it.file_id or 0)
-        kind = str(getattr(export, "kind", "values"))
+        assert export is not None   # only parsed files are taken
+        kind = export.kind
         density = accumulate.density_of(export, it.profile)
         if kind == "summary":
             n_values = accumulate.add_summaries(conn, how, file_id, str(target), export, density, at, tally)
         else:
             n_values = accumulate.add_values(conn, how, file_id, export, density, now, tally,
                                              lambda: self._maybe_crash("mid-values", it.call), path=str(target))
-        n_bad = len(getattr(export, "bad_rows", ()) or ())
+        n_bad = len(export.bad_rows)
         files.mark_done(conn, file_id, at=at, archived_path=str(target), kind=kind, n_values=n_values,
                         n_bad_rows=n_bad)
-        bad_rows = tuple(getattr(export, "bad_rows", ()) or ())
-        notes = [str(n) for n in (getattr(export, "notes", ()) or ())]
+        bad_rows = export.bad_rows
+        notes = list(export.notes)
         audit.append(conn, at, "file-taken", file_id=file_id,
                     detail={"path": str(it.path), "sha256": it.sha, "kind": kind, "values": n_values,
-                            "bad_rows": n_bad, "profile": getattr(it.profile, "name", None),
+                            "bad_rows": n_bad, "profile": it.profile.name if it.profile is not None else None,
                             "archived_path": str(target), "lots_opened": tally.opened, "notes": notes,
                             "bad_row_details": [{"line": b.line, "column": b.column, "reason": b.reason}
                                                 for b in bad_rows[:50]]})
@@ -368,7 +407,14 @@ class Intake:
 
         The target was chosen free (on disk and in the files table) inside the file's transaction, and the
         notices name it. Only if something outside lotwarden has put a file there since does this one go
-        beside it under a free name (never overwriting), with a warning; the files table then records that."""
+        beside it under a free name (never overwriting), with a warning; the files table then records that.
+
+        A failure (archive folder unusable, disk full) leaves the file in the drop folder and is a fault of
+        the archive / quarantine folder, not of the file: while its backoff runs, no move there is tried
+        (None), and the next look at the file (the rescan) tries again."""
+        where = _move_where(target)
+        if not self._faults.ready(where):
+            return None
         final = target
         try:
             if src.exists():
@@ -376,22 +422,64 @@ class Intake:
                     final = archive.free_name(target.parent, target.name)
                     log.warning("archive target %s of file %s (id %s) is taken by a file lotwarden did not put"
                                 " there; moving it to %s instead", target, src, file_id, final)
+                if state == "rejected":  # the reason first: if it cannot be written, the file stays put
+                    self._write_reason(file_id, src, final)
                 archive.move_file(src, final)
             elif not target.exists():
                 log.warning("file %s (id %s) is neither in the drop folder nor at %s", src, file_id, target)
                 return None
-            if state == "rejected":
-                with self.store.read() as conn:
-                    row = files.reject_reason(conn, file_id)
-                archive.write_reason(final, _reason_text(src, final, *row))
+            elif state == "rejected":  # moved before a crash or a failed reason write: (re)write its reason
+                self._write_reason(file_id, src, final)
         except OSError as exc:
-            log.error("cannot move %s to %s: %s; will retry", src, final, exc)
+            self._faults.failed(where, exc, f"cannot move {src.name} to {final.parent}")
             return None
+        self._faults.worked(where)
         self._maybe_crash("after-archive", call)
         self._moved.append((utc_iso(self.clock()), str(final), file_id))
         if len(self._moved) >= MAX_UNRECORDED_MOVES:
             self.flush()
         return str(final)
+
+    def _write_reason(self, file_id: int, src: Path, final: Path) -> None:
+        with self.store.read() as conn:
+            row = files.reject_reason(conn, file_id)
+        archive.write_reason(final, _reason_text(src, final, *row))
+
+    def _after_move(self, outcome: FileOutcome, target: Path, moved: str | None) -> FileOutcome:
+        """The outcome once its move was tried: where it went, or why it is still in the drop folder."""
+        if moved is not None:
+            return replace(outcome, moved_to=moved)
+        fault = self._faults.open_fault(_move_where(target))
+        if fault is None:
+            return outcome
+        note = f"not moved yet: {fault}; it stays in the drop folder and is moved on a later try"
+        status = "waiting" if outcome.status == "archived" else outcome.status
+        return replace(outcome, status=status, reason="; ".join(x for x in (outcome.reason, note) if x))
+
+    # -- persistent faults ---------------------------------------------------------------------
+    @property
+    def faults(self) -> FaultTracker:
+        """The open persistent faults (state database, archive and quarantine folders), keyed by where + kind."""
+        return self._faults.tracker
+
+    def fault_alerts(self) -> list[FaultEvent]:
+        """The fault events that want an alert since the last call: a ``FaultStep`` (``alert`` True) for a
+        fault that has lasted ``alert_after_seconds``, a ``Cleared`` (``alerted`` True) when such a fault has
+        gone. Each event is handed out once."""
+        with self._lock:
+            return self._faults.take_events()
+
+    def _db_failed(self, exc: BaseException, what: str) -> None:
+        self._faults.failed(self._db_where, root_db_error(exc), what)
+
+    def _db_worked(self) -> None:
+        self._faults.worked(self._db_where)
+
+    def _db_waiting(self, it: _Item) -> FileOutcome:
+        fault = self._faults.open_fault(self._db_where) or self._db_where
+        return FileOutcome(str(it.path), "waiting", file_id=it.file_id, sha256=it.sha,
+                           reason=f"not taken yet: {fault}; the file stays in the drop folder and is taken on a"
+                                  " later try")
 
     @contextmanager
     def _write(self, *, durable: bool = True) -> Iterator[Connection]:
@@ -414,9 +502,15 @@ class Intake:
         Until then a move is only on disk; a crash is harmless: ``recover`` finds the file in the archive.
         """
         with self._lock:
-            if self._moved:
-                with self._write():
-                    pass
+            if self._moved and self._faults.ready(self._db_where):
+                try:
+                    with self._write():
+                        pass
+                except DB_FAULTS as exc:   # the moves stay listed (and on disk) for the next try
+                    self._db_failed(exc, f"recording {len(self._moved)} archive move(s)")
+                    return
+                self._db_worked()
+            self._periodic_check()
 
     # -- periodic and start-up work ------------------------------------------------------------
     def close_idle(self, now: datetime | None = None, *, idle_seconds_override: float | None = None) -> list[Verdict]:
@@ -432,8 +526,94 @@ class Intake:
                 rule = match_rule(rules, key.product)
                 return rule.idle_minutes * 60.0 if rule else default_idle
 
-            with self._write() as conn:  # also records pending archive moves
-                return accumulate.close_idle_lots(conn, self._judging(), moment, idle_for)
+            if not self._faults.ready(self._db_where):
+                return []
+            try:
+                with self._write() as conn:  # also records pending archive moves
+                    closed = accumulate.close_idle_lots(conn, self._judging(), moment, idle_for)
+            except DB_FAULTS as exc:   # rolled back: the lots stay open and are closed on a later try
+                self._db_failed(exc, "closing idle lots")
+                return []
+            self._db_worked()
+            self._periodic_check(moment)
+            return closed
+
+    def check_taken(self, now: datetime | None = None) -> list[ChangedFile]:
+        """Look again at every file taken in the last ``aftertake.WATCH_SECONDS`` (from the files table, so a
+        restart goes on checking): an archived copy whose size or mtime differ from what was read is compared
+        with the taken bytes, and a real change is recorded once (audit ``file-changed-after-take``, with the
+        alert ``changed_alert`` makes, in one transaction) and logged. Returns the changes not handed out yet
+        (those found by the periodic check that ``flush`` and ``close_idle`` run, too), each once."""
+        with self._lock:
+            moment = now or self.clock()
+            try:
+                found = self._check_taken(moment)
+            except DB_FAULTS as exc:   # nothing recorded: found again at the next check
+                self._db_failed(exc, "reading the files taken lately")
+                found = []
+            out, self._changes = self._changes + found, []
+            return out
+
+    def _periodic_check(self, now: datetime | None = None) -> None:
+        """Run the after-take check at most every ``aftertake.CHECK_EVERY_SECONDS`` (driven from ``flush`` and
+        ``close_idle``, which the run loop calls anyway)."""
+        moment = now or self.clock()
+        last = self._last_check
+        if last is not None and (moment - last).total_seconds() < aftertake.CHECK_EVERY_SECONDS:
+            return
+        where = "checking files taken for later changes"
+        if not self._faults.ready(where):
+            return
+        try:
+            found = self._check_taken(moment)
+        except DB_FAULTS as exc:
+            self._last_check = moment
+            self._db_failed(exc, "reading the files taken lately")
+            return
+        except Exception as exc:  # a bug of ours must not stop flush / close_idle: said once per backoff step
+            self._last_check = moment
+            self._faults.failed(where, exc, "the after-take check", traceback=True)
+            return
+        self._faults.worked(where)
+        self._changes = (self._changes + found)[-MAX_UNCLAIMED_CHANGES:]
+
+    def _check_taken(self, moment: datetime) -> list[ChangedFile]:
+        self._last_check = moment
+        if not self._faults.ready(self._db_where):
+            return []
+        since = utc_iso(moment - timedelta(seconds=aftertake.WATCH_SECONDS))
+        stop = utc_iso(moment - timedelta(seconds=aftertake.WATCH_SECONDS + 3600.0))
+        with self.store.read() as conn:
+            rows = files.taken_since(conn, since, stop, aftertake.EVENT)
+        changes: list[ChangedFile] = []
+        for row in rows:
+            sig = aftertake.signature(row.archived_path)
+            if sig is None or self._seen_after.get(row.id) == (sig[0], sig[2]):
+                continue
+            change, seen = aftertake.look_again(row)
+            if seen is not None:
+                self._seen_after[row.id] = seen
+            if change is not None:
+                changes.append(change)
+        watched = {r.id for r in rows}
+        for file_id in [k for k in self._seen_after if k not in watched]:
+            del self._seen_after[file_id]
+        if not changes:
+            return []
+        at = utc_iso(moment)
+        try:
+            with self._write() as conn:
+                for c in changes:
+                    audit.append(conn, at, aftertake.EVENT, file_id=c.file_id, detail=c.detail())
+                    if self.changed_alert is not None:
+                        outbox.enqueue(conn, self.changed_alert(c, at), self.config.alerts.channels)
+        except DB_FAULTS as exc:   # not recorded: found again at the next check
+            self._db_failed(exc, "recording files changed after they were taken")
+            return []
+        self._db_worked()
+        for c in changes:
+            log.error("file changed after it was taken: %s", c.message())
+        return changes
 
     def recover(self) -> list[FileOutcome]:
         """Start-up: finish moves of handled files left in place; retry files left 'processing'."""
@@ -513,6 +693,14 @@ def _parse_crash(text: str) -> tuple[str, int] | None:
     if point not in CRASH_POINTS:
         raise ValueError(f"{CRASH_ENV}={text!r}: point must be one of {', '.join(CRASH_POINTS)}")
     return point, int(n) if n else 1
+
+
+_READ_ONLY_OUTCOMES = ("ignored", "vanished", "unreadable")   # outcomes decided before any database write
+
+
+def _move_where(target: Path) -> str:
+    """The fault's *where* for moves to ``target`` (root/YYYY-MM-DD/name): the archive or quarantine root."""
+    return f"moving files to {target.parent.parent}"
 
 
 def _planned_path(file_id: int, state: str, archived_path: str | None) -> Path:

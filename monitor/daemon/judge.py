@@ -16,12 +16,12 @@ from typing import Any
 
 import numpy as np
 
-from monitor.alerts import outbox
+from monitor.alerts import kinds
 from monitor.alerts.alert import Alert
 from monitor.daemon import rejudge
 from monitor.lot import LotData, LotKey, LotSummary, Verdict, excluded_counts, no_rule_reason, unjudged
 from monitor.rulebook import Rule
-from monitor.state import audit, verdicts
+from monitor.state import audit, outbox, verdicts
 from monitor.state import lots as lot_store
 from monitor.state.database import Connection
 from monitor.units import to_rule_unit
@@ -285,12 +285,11 @@ def record_verdict(conn: Connection, verdict: Verdict, rule: Rule | None, lot: L
         if outbox.enqueue(conn, changed, channels):
             new.append(changed)
     if verdict.verdict in ("hold", "review"):
-        dedup = f"{verdict.verdict}|{key.line}|{key.product}|{key.lot}|{version}"
-        if previous is not None and previous.verdict != verdict.verdict:
-            dedup += f"|after-{previous.verdict_id}"  # held again after a pass: told again, once per change
-        alert = Alert(kind=verdict.verdict, dedup_key=dedup,
-                      created_at=at, data={**payload, "values": alert_values(lot) if values is None else values},
-                      line=key.line, product=key.product, lot=key.lot)
+        again = previous is not None and previous.verdict != verdict.verdict  # held again after a pass
+        alert = kinds.verdict_alert(verdict.verdict, line=key.line, product=key.product, lot=key.lot,
+                                    rule_version=version, payload=payload,
+                                    values=alert_values(lot) if values is None else values, at=at,
+                                    after_verdict_id=previous.verdict_id if again and previous else None)
         if outbox.enqueue(conn, alert, channels):
             new.append(alert)
     return new

@@ -11,10 +11,9 @@ from typing import TextIO
 class OneLineFormatter(logging.Formatter):
     """ISO-8601 UTC time, level, logger, message — and any traceback folded onto the same line."""
 
-    converter = time.gmtime
-
     def __init__(self) -> None:
         super().__init__("%(asctime)s %(levelname)s %(name)s: %(message)s", "%Y-%m-%dT%H:%M:%SZ")
+        self.converter = time.gmtime
 
     def format(self, record: logging.LogRecord) -> str:
         text = super().format(record)

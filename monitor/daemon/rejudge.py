@@ -9,9 +9,10 @@ replaces, so each change is told once, across crashes and retries.
 from __future__ import annotations
 
 import json
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
 
+from monitor.alerts import kinds
 from monitor.alerts.alert import Alert
 from monitor.lot import LotKey, Verdict
 from monitor.state import lots as lot_store
@@ -36,7 +37,7 @@ class Previous:
     p_value: float | None
     lot_rows: int          # rows of the lot (usable or not) stored when it was judged
 
-    def to_json(self) -> dict[str, Any]:
+    def to_json(self) -> dict[str, object]:
         """The alert's ``previous`` object."""
         return {"verdict": self.verdict, "decided_at": self.decided_at, "reason": self.reason, "rule": self.rule,
                 "rule_version": self.rule_version, "n": self.n, "mean": self.mean, "p_value": self.p_value}
@@ -73,18 +74,18 @@ def why_reopened(conn: Connection, lot_id: int, rows_before: int) -> str:
     return f"{total} late value{'s' if total != 1 else ''} from {where} reopened the lot"
 
 
-def changed_alert(verdict: Verdict, payload: dict[str, Any], previous: Previous, why: str, at: str) -> Alert | None:
+def changed_alert(verdict: Verdict, payload: Mapping[str, object], previous: Previous, why: str, at: str,
+                  values: Sequence[float | None] | None = None) -> Alert | None:
     """The verdict-changed alert when ``verdict`` replaces a told hold / review with another verdict; else None.
 
-    ``payload`` is ``verdict.to_json()``; the caller adds ``values``."""
+    ``payload`` is ``verdict.to_json()``; ``values`` the lot's values (left out when None)."""
     if previous.verdict not in TOLD or verdict.verdict == previous.verdict:
         return None
     key = verdict.key
-    return Alert(kind="verdict-changed",
-                 dedup_key=f"verdict-changed|{key.line}|{key.product}|{key.lot}|{previous.verdict_id}",
-                 created_at=at, data={**payload, "previous": previous.to_json(), "why": why},
-                 line=key.line, product=key.product, lot=key.lot)
+    return kinds.verdict_changed(line=key.line, product=key.product, lot=key.lot,
+                                 previous_verdict_id=previous.verdict_id, payload=payload,
+                                 previous=previous.to_json(), why=why, values=values, at=at)
 
 
-def _number(x: Any) -> float | None:
+def _number(x: object) -> float | None:
     return float(x) if isinstance(x, (int, float)) and not isinstance(x, bool) else None

@@ -10,12 +10,18 @@ from __future__ import annotations
 
 import hashlib
 import logging
+from collections.abc import Sequence
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any, Callable
+from typing import Protocol
 
+from monitor.alerts import kinds
+from monitor.alerts.alert import Alert
+from monitor.daemon.components import Components
+from monitor.daemon.config import Config, load_config, load_rule_set
 from monitor.errors import LotwardenError
+from monitor.rulebook import Rule
 
 log = logging.getLogger("lotwarden.daemon")
 
@@ -94,113 +100,108 @@ def decide_reload(fp: Fingerprint, applied: Fingerprint | None, seen: Fingerprin
     return ReloadStep("reload")
 
 
-def kept_rules(old: list[Any], loaded: list[Any]) -> list[Any]:
+def kept_rules(old: Sequence[Rule], loaded: Sequence[Rule]) -> list[Rule]:
     """Rules in force whose files are gone and that no loaded rule replaces (same name): they stay."""
     names = {r.name for r in loaded}
-    return [r for r in old if r.name not in names and getattr(r, "source", None)
-            and not Path(r.source).exists()]
+    return [r for r in old if r.name not in names and r.source and not Path(r.source).exists()]
 
 
-class Reloading:
-    """Mixin for the daemon: the reload check and reload on the loop thread.
+def fingerprint_of(config_path: Path, config: Config) -> Fingerprint:
+    """The reload check's picture for the config at ``config_path`` (its rules and operator templates)."""
+    return take_fingerprint(config_path, config.rules_dir, config.alerts.templates)
 
-    The host class provides ``config_path``, ``_config``, ``_rules``, ``_intake``, ``_dispatcher``,
-    ``_scheduler``, ``_dispatch_jobs``, ``_applied_fp``, ``_seen_fp`` and the methods ``_load_rules``,
-    ``_apply_watch``, ``_make_dispatcher``, ``_schedule_dispatcher``, ``_audit``, ``_emit_alert``, ``_event``.
-    """
 
-    config_path: Path
-    _config: Any
-    _rules: list[Any]
-    _intake: Any
-    _dispatcher: Any
-    _scheduler: Any
-    _dispatch_jobs: list[str]
-    _applied_fp: Fingerprint | None
-    _seen_fp: Fingerprint | None
-    _load_rules: Callable[[Any], list[Any]]
-    _apply_watch: Callable[[Any], None]
-    _make_dispatcher: Callable[[Any], Any]
-    _schedule_dispatcher: Callable[[], None]
-    _audit: Callable[..., None]
-    _emit_alert: Callable[[str, str, dict[str, Any]], bool]
-    _event: Callable[[str, dict[str, Any]], None]
-    _good_since: str = ""          # when the config and rules in force were loaded (start or last reload)
+def utc_now_iso() -> str:
+    return datetime.now(UTC).isoformat(timespec="seconds")
 
-    def _fingerprint(self, config: Any) -> Fingerprint:
-        return take_fingerprint(self.config_path, config.rules_dir, getattr(config.alerts, "templates", None))
 
-    def _check_reload(self, forced: bool) -> None:
-        fp = self._fingerprint(self._config)
-        step = decide_reload(fp, self._applied_fp, self._seen_fp, forced)
+class ReloadHost(Protocol):
+    """What the reload needs of the daemon: the parts in force, building and swapping in the next ones
+    (loop thread), and recording what happened."""
+
+    @property
+    def components(self) -> Components: ...
+
+    def rebuild(self, config: Config, rules: Sequence[Rule]) -> Components: ...
+
+    def swap(self, parts: Components) -> None: ...
+
+    def store_alert(self, alert: Alert) -> bool: ...
+
+    def audit(self, event: str, **detail: object) -> None: ...
+
+    def event(self, kind: str, details: dict[str, object]) -> None: ...
+
+
+class Reloader:
+    """The reload check and the reload, run on the loop thread: it remembers the picture in force
+    (``applied``), the one seen at the last check (``seen``) and when the version in force became good."""
+
+    def __init__(self, config_path: Path, host: ReloadHost, applied: Fingerprint) -> None:
+        self.config_path = config_path
+        self.host = host
+        self.applied: Fingerprint = applied
+        self.seen: Fingerprint = applied
+        self.good_since = ""          # when the config and rules in force were loaded by a reload
+        self.checks = 0               # reload checks done (tests wait on it instead of sleeping)
+
+    def check(self, forced: bool) -> None:
+        """One reload check (``forced``: SIGHUP — reload now and accept removed rule files)."""
+        parts = self.host.components
+        fp = fingerprint_of(self.config_path, parts.config)
+        step = decide_reload(fp, self.applied, self.seen, forced)
         if step.action in ("none", "wait"):
-            self._seen_fp = fp
-            return
-        if step.action == "refuse-removal":
-            self._reject(LotwardenError(
-                "rule file removed; keeping its last good version (send SIGHUP to accept a removal)",
-                path=Path(self._config.rules_dir) / step.missing[0], key="rules_dir"), fp)
-        self._reload(fp, forced)
+            self.seen = fp
+        else:
+            if step.action == "refuse-removal":
+                self._reject(LotwardenError(
+                    "rule file removed; keeping its last good version (send SIGHUP to accept a removal)",
+                    path=Path(parts.config.rules_dir) / step.missing[0], key="rules_dir"))
+            self._reload(fp, forced)
+        self.checks += 1
 
-    def _reload(self, fp: Fingerprint, forced: bool = False) -> None:
-        from monitor.daemon.config import load_config
-
+    def _reload(self, fp: Fingerprint, forced: bool) -> None:
+        old = self.host.components
         try:
             config = load_config(self.config_path)
-            rules = self._load_rules(config)
+            rules = load_rule_set(config)
         except LotwardenError as exc:
-            self._reject(exc, fp)
-            self._applied_fp = self._seen_fp = fp   # do not re-try the same bad picture every check
+            self._reject(exc)
+            self.applied = self.seen = fp   # do not re-try the same bad picture every check
             return
         if not forced:   # a rule whose file is gone stays in force until SIGHUP confirms the removal
-            rules = rules + kept_rules(self._rules, rules)
-        old, old_fp = self._config, self._applied_fp
-        self._config, self._rules = config, rules
-        self._applied_fp = self._seen_fp = self._fingerprint(config)
-        self._intake.set_rules(rules)
-        if hasattr(self._intake, "set_config"):
-            self._intake.set_config(config)
-        if config.watch != old.watch or config.profiles != old.profiles:
-            self._apply_watch(config)
-        if config.alerts != old.alerts and self._scheduler is not None:
-            for job_id in self._dispatch_jobs:
-                try:
-                    self._scheduler.remove_job(job_id)
-                except Exception:
-                    pass
-            if self._dispatcher is not None:
-                self._dispatcher.close()
-            self._dispatcher = self._make_dispatcher(config)   # it checks the templates itself
-            self._schedule_dispatcher()
-        elif old_fp is not None and self._applied_fp.templates != old_fp.templates:
-            self._reload_templates(config)
-        self._good_since = datetime.now(timezone.utc).isoformat()
-        self._audit("config-reloaded", config_version=getattr(config, "version", ""),
-                    rules={r.name: r.version for r in rules})
-        log.info("reloaded: config version %s, %d rules (%s)", getattr(config, "version", "?"), len(rules),
+            rules = rules + kept_rules(old.rules, rules)
+        old_fp = self.applied
+        new = self.host.rebuild(config, rules)
+        self.host.swap(new)
+        self.applied = self.seen = fingerprint_of(self.config_path, config)
+        if new.dispatcher is not None and new.dispatcher is old.dispatcher \
+                and self.applied.templates != old_fp.templates:
+            self._reload_templates(new)
+        self.good_since = datetime.now(UTC).isoformat()
+        self.host.audit("config-reloaded", config_version=config.version, rules={r.name: r.version for r in rules})
+        log.info("reloaded: config version %s, %d rules (%s)", config.version, len(rules),
                  ", ".join(f"{r.name}@{r.version}" for r in rules))
-        self._event("reloaded", {"rules": len(rules)})
+        self.host.event("reloaded", {"rules": len(rules)})
 
-    def _reload_templates(self, config: Any) -> None:
+    def _reload_templates(self, parts: Components) -> None:
         """New operator templates: checked first; a bad set leaves the one in force (config-rejected)."""
-        reload = getattr(self._dispatcher, "reload_templates", None)
-        if reload is None:
-            return
+        assert parts.dispatcher is not None
         try:
-            reload(getattr(config.alerts, "templates", None))
+            parts.dispatcher.reload_templates(parts.config.alerts.templates)
         except LotwardenError as exc:
-            self._reject(exc, self._applied_fp)  # type: ignore[arg-type]  # set by _reload just before
+            self._reject(exc)
             return
-        log.info("reloaded operator templates from %s", config.alerts.templates)
+        log.info("reloaded operator templates from %s", parts.config.alerts.templates)
 
-    def _reject(self, exc: LotwardenError, fp: Fingerprint) -> None:
+    def _reject(self, exc: LotwardenError) -> None:
         """Keep the last good config: log, audit and alert (config-rejected) the bad file."""
         bad = Path(exc.path) if exc.path else self.config_path
         digest = content_hash([bad])
         log.error("config rejected, keeping the last good version: %s", exc)
-        self._audit("config-rejected", file=str(bad), key=exc.key, message=str(exc), content_sha256=digest)
+        self.host.audit("config-rejected", file=str(bad), key=exc.key, message=str(exc), content_sha256=digest)
         # the same bad edit made again after a good version was in force is a new alert
-        self._emit_alert("config-rejected", f"config-rejected|{bad}|{digest[:16]}|{self._good_since}",
-                         {"file": str(bad), "key": exc.key, "line": exc.line, "message": str(exc),
-                          "content_sha256": digest})
-        self._event("config-rejected", {"error": str(exc)})
+        self.host.store_alert(kinds.config_rejected(file=str(bad), key=exc.key, line=exc.line, message=str(exc),
+                                                    content_sha256=digest, in_force_since=str(self.good_since),
+                                                    at=utc_now_iso()))
+        self.host.event("config-rejected", {"error": str(exc)})

@@ -1,7 +1,8 @@
-"""The run loop: wires config, rules, state store, intake, watcher, scheduler and dispatcher.
+"""The run loop: owns the daemon's parts (built by :mod:`monitor.daemon.components`) and drives them.
 
 One thread (the caller of :meth:`Daemon.run`) owns the state store and the intake: it takes finished files
-from the settle tracker and processes them one at a time, closes idle lots and reloads config and rules.
+from the settle tracker and processes them one at a time, closes idle lots and reloads config and rules
+(a reload builds the next :class:`~monitor.daemon.components.Components` and swaps it in on this thread).
 Scheduler jobs and observer callbacks only post hints and requests and wake that thread.
 
 Log setup lives in :mod:`monitor.daemon.logsetup`, the reload check in :mod:`monitor.daemon.reload` and the
@@ -16,20 +17,43 @@ import os
 import queue
 import sys
 import threading
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any, TextIO
+from typing import TextIO, TypeVar
+
+from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_MISSED, JobExecutionEvent
+from apscheduler.schedulers.background import BackgroundScheduler
 
 from monitor.alerts import kinds
 from monitor.alerts.alert import Alert
-from monitor.daemon.instance_lock import InstanceLock
-from monitor.daemon.logsetup import LogSetup, OneLineFormatter  # noqa: F401  (re-exported)
-from monitor.daemon.reload import Fingerprint, Reloading, ReloadStep, content_hash, decide_reload, take_fingerprint  # noqa: F401  (re-exported for callers of this module)
+from monitor.daemon import archive, components
+from monitor.daemon.aftertake import ChangedFile
+from monitor.daemon.components import Components, Core
+from monitor.daemon.config import Config, load_config, load_rule_set
+from monitor.daemon.faultlog import FaultEvent
+from monitor.daemon.faults import Cleared
+from monitor.daemon.intake import FileOutcome
+from monitor.daemon.logsetup import LogSetup, OneLineFormatter
+from monitor.daemon.reload import (
+    Fingerprint,
+    Reloader,
+    ReloadStep,
+    content_hash,
+    decide_reload,
+    fingerprint_of,
+    take_fingerprint,
+)
 from monitor.daemon.schedlog import SkippedOncePerHour
 from monitor.daemon.signals import SignalHandling
-from monitor.daemon.watcher import FolderWatcher, NameFilter, SettleTracker, scan
+from monitor.daemon.watcher import scan
 from monitor.errors import LotwardenError
+from monitor.lot import Verdict
+from monitor.rulebook import Rule
+from monitor.state import outbox
+
+__all__ = ["Daemon", "Fingerprint", "LogSetup", "OneLineFormatter", "ReloadStep", "content_hash",
+           "decide_reload", "take_fingerprint", "utc_now_iso"]   # re-exported for callers of this module
 
 log = logging.getLogger("lotwarden.daemon")
 
@@ -40,7 +64,8 @@ STOP_DRAIN_SECONDS = 2.0                    # scheduler shutdown, and the channe
 BATCH_FILES = 32                            # files handed to intake per commit when a backlog is finished
 PAUSE_ENV = "LOTWARDEN_PAUSE_AFTER_FILES"   # test hook: stop taking files after n (crash tests)
 
-EventFn = Callable[[str, dict[str, Any]], None]
+EventFn = Callable[[str, dict[str, object]], None]
+T = TypeVar("T")
 
 
 def utc_now_iso() -> str:
@@ -48,7 +73,7 @@ def utc_now_iso() -> str:
 
 
 # --------------------------------------------------------------------------------------------- daemon
-class Daemon(Reloading, SignalHandling):
+class Daemon:
     """The unattended service. ``run()`` blocks until ``stop()`` (or SIGTERM/SIGINT) and returns 0,
     or returns 2 when config or rules are bad at start-up."""
 
@@ -61,33 +86,28 @@ class Daemon(Reloading, SignalHandling):
         self.ready = threading.Event()        # set once watching and the first scan is done
         self.stopped = threading.Event()
         self.files_done = 0
+        self.passes = 0                       # loop passes completed (tests wait on these instead of sleeping)
+        self.scans = 0                        # folder scans completed
         self._stop = threading.Event()
         self._wake = threading.Event()
         self._reload_requested = False        # SIGHUP: reload whatever is on disk, accept removals
         self._reload_check_due = False
         self._idle_due = False
-        self._config: Any = None
-        self._rules: list[Any] = []
-        self._store: Any = None
-        self._lock: InstanceLock | None = None
-        self._intake: Any = None
-        self._dispatcher: Any = None
-        self._scheduler: Any = None
-        self._watcher: FolderWatcher | None = None
-        self._tracker: SettleTracker | None = None
-        self._names = NameFilter()
-        self._applied_fp: Fingerprint | None = None
-        self._seen_fp: Fingerprint | None = None
-        self._dispatch_jobs: list[str] = []
+        self._edges_due = False               # supervision tick: files changed after take, fault alerts
+        self._fault_events: list[FaultEvent] = []   # fault events whose alert is not stored yet
+        self._config: Config | None = None    # the config in force (the last good one)
+        self._core: Core | None = None
+        self._parts: Components | None = None
+        self._scheduler: BackgroundScheduler | None = None
+        self._reloader: Reloader | None = None
         self._skipped_filter: SkippedOncePerHour | None = None
         self._started_at = utc_now_iso()
         self._pause_after = int(os.environ.get(PAUSE_ENV, "0") or 0)
         self.idle_check_seconds = IDLE_CHECK_SECONDS       # job intervals; tests may shorten them
         self.supervise_seconds = SUPERVISE_SECONDS
         self.reload_check_seconds = RELOAD_CHECK_SECONDS
-        self._signals: list[str] = []
-        self._calls: queue.SimpleQueue[tuple[Callable[[], Any], concurrent.futures.Future[Any]]] = \
-            queue.SimpleQueue()
+        self._signals = SignalHandling(self.stop, self.request_reload)
+        self._calls: queue.SimpleQueue[Callable[[], None]] = queue.SimpleQueue()
 
     # ------------------------------------------------------------------ control from other threads
     def stop(self) -> None:
@@ -100,50 +120,73 @@ class Daemon(Reloading, SignalHandling):
         self._reload_requested = True
         self._wake.set()
 
-    def call_soon(self, fn: Callable[[Daemon], Any]) -> concurrent.futures.Future[Any]:
+    def call_soon(self, fn: Callable[[Daemon], T]) -> concurrent.futures.Future[T]:
         """Run ``fn(daemon)`` on the loop thread (which owns intake and store); returns its future."""
-        fut: concurrent.futures.Future[Any] = concurrent.futures.Future()
-        self._calls.put((lambda: fn(self), fut))
+        fut: concurrent.futures.Future[T] = concurrent.futures.Future()
+
+        def call() -> None:
+            if not fut.set_running_or_notify_cancel():
+                return
+            try:
+                fut.set_result(fn(self))
+            except BaseException as exc:  # handed to the caller through the future
+                fut.set_exception(exc)
+
+        self._calls.put(call)
         self._wake.set()
         return fut
 
-    def close_all_lots(self) -> Any:
+    def close_all_lots(self) -> list[Verdict] | None:
         """Close and judge every open lot now (loop thread only; use via ``call_soon``)."""
         return self._close_idle(idle_seconds_override=0)
 
+    def check_reload(self, forced: bool) -> None:
+        """One reload check now (loop thread only; use via ``call_soon``); ``forced`` is what SIGHUP does."""
+        if self._reloader is not None:
+            self._reloader.check(forced)
+
     @property
-    def config(self) -> Any:
+    def config(self) -> Config | None:
         """The config in force (the last good one)."""
         return self._config
 
     @property
+    def components(self) -> Components:
+        """The parts in force (only while running)."""
+        if self._parts is None:
+            raise RuntimeError("the daemon is not running")
+        return self._parts
+
+    @property
+    def reload_checks(self) -> int:
+        """Reload checks done so far."""
+        return 0 if self._reloader is None else self._reloader.checks
+
+    @property
     def store_path(self) -> Path | None:
-        return None if self._store is None else Path(self._store.path)
+        return None if self._core is None else self._core.store.path
 
     # ------------------------------------------------------------------ run
     def run(self) -> int:
         logs = LogSetup(self.log_stream) if self.configure_log else None
-        old_signals = self._install_signals()
+        old_signals = self._signals.install()
         try:
             return self._run()
         finally:
-            self._restore_signals(old_signals)
+            self._signals.restore(old_signals)
             if logs is not None:
                 logs.undo()
             self.stopped.set()
 
     def _run(self) -> int:
-        from monitor.daemon.config import load_config
-
         try:
             config = load_config(self.config_path)
-            rules = self._load_rules(config)
+            rules = load_rule_set(config)
         except LotwardenError as exc:
             log.error("cannot start: %s", exc)
             print(f"lotwarden: {exc}", file=sys.stderr)
             return 2
-        self._config, self._rules = config, rules
-        self._applied_fp = self._seen_fp = self._fingerprint(config)
+        self._config = config
         try:
             self._open(config, rules)
         except LotwardenError as exc:
@@ -162,83 +205,26 @@ class Daemon(Reloading, SignalHandling):
         return 0
 
     # ------------------------------------------------------------------ start-up
-    def _load_rules(self, config: Any) -> list[Any]:
-        from monitor.rulebook import load_rules
-
-        return load_rules(config.rules_dir)
-
-    def _open(self, config: Any, rules: list[Any]) -> None:
-        from monitor.daemon.intake import Intake
-        from monitor.daemon.store import Store
-
-        for folder in (config.state.folder, config.state.archive, config.state.quarantine):
-            Path(folder).mkdir(parents=True, exist_ok=True)
-        self._lock = InstanceLock.acquire(config.state.folder)   # a second daemon on this folder stops here
-        self._store = Store.open(config.state.folder)
-        self._intake = Intake(config, rules, self._store)
-        recovered = self._intake.recover()
-        for outcome in recovered or ():
-            describe = getattr(outcome, "describe", None)
-            log.warning("recovered after an unclean stop: %s", describe() if callable(describe) else outcome)
+    def _open(self, config: Config, rules: list[Rule]) -> None:
+        """Build the parts (the composition root's functions), recover, say so, scan."""
+        self._core = core = components.open_core(config, rules)   # a second daemon on this folder stops here
+        core.intake.changed_alert = _changed_alert
+        for outcome in core.intake.recover():
+            log.warning("recovered after an unclean stop: %s", outcome.describe())
         self._store_alert(kinds.daemon_started(started_at=self._started_at, config=str(self.config_path),
                                                rules=[r.name for r in rules]))
-        self._dispatcher = self._make_dispatcher(config)
-        self._apply_watch(config)
-        self._start_scheduler(config)
+        self._scheduler = self._start_scheduler(config)
+        self._parts = parts = components.build(config, rules, core, self._scheduler, self._on_hint)
+        self._reloader = Reloader(self.config_path, self, fingerprint_of(self.config_path, config))
+        self._rescan()
         log.info("started: config %s (version %s), %d rules, %d profiles, channels %s, watching %s (%s, "
-                 "settle %gs)", self.config_path, getattr(config, "version", "?"), len(rules),
+                 "settle %gs)", self.config_path, config.version, len(rules),
                  len(config.profiles), ",".join(config.alerts.channels) or "none", config.watch.folder,
-                 self._watcher.kind if self._watcher else "?", config.watch.settle_seconds)
+                 parts.watching.watcher.kind, config.watch.settle_seconds)
         self._event("started", {"config": str(self.config_path), "rules": len(rules)})
         self.ready.set()
 
-    def _make_dispatcher(self, config: Any) -> Any:
-        try:
-            from monitor.alerts.dispatch import Dispatcher
-        except ImportError:
-            log.warning("alert dispatcher not installed: alerts stay in the outbox until it is")
-            return None
-        try:
-            return Dispatcher(self._store_db_path(), config.alerts)
-        except LotwardenError as exc:
-            log.error("alert delivery not started: %s", exc)
-            return None
-
-    def _store_db_path(self) -> Path:
-        path = getattr(self._store, "path", None) or getattr(self._store, "db_path", None)
-        return Path(path) if path is not None else Path(self._config.state.folder) / "lotwarden.db"
-
-    def _marker_for(self, path: Path) -> str | None:
-        try:
-            from monitor.ingest.profile import profile_for
-        except ImportError:
-            return None
-        try:
-            prof = profile_for(path, self._config.profiles)
-        except Exception:  # a profile lookup problem must not stop the watcher; intake reports it
-            return None
-        return getattr(prof, "marker_suffix", None) or None
-
-    def _apply_watch(self, config: Any) -> None:
-        """(Re)build name filter, tracker and observer from ``config.watch``; then scan."""
-        w = config.watch
-        suffixes = tuple(s for s in (getattr(p, "marker_suffix", None) for p in config.profiles) if s)
-        self._names = NameFilter(include=tuple(w.include), ignore=tuple(w.ignore), marker_suffixes=suffixes)
-        old = self._tracker.pending() if self._tracker else []
-        # mtimes are this machine's own only with native watching (polling is for shares with other clocks)
-        self._tracker = SettleTracker(w.settle_seconds, marker_for=self._marker_for, trust_mtime=not w.polling)
-        self._tracker.hint_many(p for p in old if self._names.accepts(p.name))
-        if self._watcher is not None:
-            self._watcher.stop()
-        Path(w.folder).mkdir(parents=True, exist_ok=True)
-        self._watcher = FolderWatcher(w.folder, w.polling, w.poll_interval, self._on_hint)
-        self._watcher.start()   # observer first, then scan: nothing dropped in between is missed
-        self._rescan()
-
-    def _start_scheduler(self, config: Any) -> None:
-        from apscheduler.events import EVENT_JOB_ERROR, EVENT_JOB_MISSED
-        from apscheduler.schedulers.background import BackgroundScheduler
-
+    def _start_scheduler(self, config: Config) -> BackgroundScheduler:
         # a job still busy at its next run time is skipped with a warning each time: said once per job per hour
         self._skipped_filter = SkippedOncePerHour().install()
         sched = BackgroundScheduler(timezone=UTC, job_defaults={
@@ -249,25 +235,48 @@ class Daemon(Reloading, SignalHandling):
         sched.add_job(self._supervise, "interval", seconds=self.supervise_seconds, id="supervise")
         sched.add_job(self._request_reload_check, "interval", seconds=self.reload_check_seconds, id="reload-check")
         sched.start()
-        self._scheduler = sched
-        self._schedule_dispatcher()
+        return sched
 
-    def _schedule_dispatcher(self) -> None:
-        if self._dispatcher is None or self._scheduler is None:
+    # ------------------------------------------------------------------ reload (the Reloader's host)
+    def rebuild(self, config: Config, rules: Sequence[Rule]) -> Components:
+        """The next parts for a reloaded config (loop thread)."""
+        assert self._scheduler is not None
+        return components.rebuild(self.components, config, rules, self._scheduler, self._on_hint)
+
+    def swap(self, parts: Components) -> None:
+        """Put ``parts`` in force (loop thread); a new observer gets its first scan."""
+        old, self._parts, self._config = self._parts, parts, parts.config
+        if old is None or parts.watching is not old.watching:
+            self._rescan()
+
+    def store_alert(self, alert: Alert) -> bool:
+        """Store one daemon alert in the outbox in its own write transaction and wake the channels."""
+        return self._store_alert(alert)
+
+    def audit(self, event: str, **detail: object) -> None:
+        """One audit record in a transaction of its own; a failure is logged."""
+        if self._core is None:
             return
-        before = {j.id for j in self._scheduler.get_jobs()}
-        self._dispatcher.schedule(self._scheduler)
-        self._dispatch_jobs = [j.id for j in self._scheduler.get_jobs() if j.id not in before]
+        try:
+            self._core.store.record_event(datetime.now(UTC), event, **detail)
+        except Exception:
+            log.exception("could not write the %s audit record", event)
+
+    def event(self, kind: str, details: dict[str, object]) -> None:
+        self._event(kind, details)
 
     # ------------------------------------------------------------------ callbacks (other threads)
     def _on_hint(self, path: Path, moved: bool) -> None:
-        target = self._names.export_for(path)
-        if target is not None and self._tracker is not None:
-            self._tracker.hint(target, moved)
+        parts = self._parts
+        if parts is None:
+            return
+        target = parts.watching.names.export_for(path)
+        if target is not None:
+            parts.watching.tracker.hint(target, moved)
             self._wake.set()
 
-    def _on_job_event(self, event: Any) -> None:
-        if getattr(event, "exception", None) is not None:
+    def _on_job_event(self, event: JobExecutionEvent) -> None:
+        if event.exception is not None:
             log.error("scheduled job %s failed: %r", event.job_id, event.exception)
         else:
             log.warning("scheduled job %s missed its run time", event.job_id)
@@ -284,8 +293,13 @@ class Daemon(Reloading, SignalHandling):
         self._wake.set()
 
     def _supervise(self) -> None:
-        w = self._watcher
-        if w is not None and not self._stop.is_set() and not w.is_alive():
+        parts = self._parts
+        if parts is None:
+            return
+        self._edges_due = True   # the loop thread looks at taken files and fault events
+        self._wake.set()
+        w = parts.watching.watcher
+        if not self._stop.is_set() and not w.is_alive():
             log.error("folder observer on %s died; restarting it and rescanning", w.folder)
             try:
                 w.restart()
@@ -295,40 +309,46 @@ class Daemon(Reloading, SignalHandling):
             self._rescan()
 
     def _rescan(self) -> None:
-        if self._tracker is None or self._config is None:
+        parts = self._parts
+        if parts is None:
             return
-        found = scan(Path(self._config.watch.folder), self._names)
+        found = scan(Path(parts.config.watch.folder), parts.watching.names)
         if found:
-            self._tracker.hint_many(found)
+            parts.watching.tracker.hint_many(found)
             self._wake.set()
+        self.scans += 1
 
     # ------------------------------------------------------------------ the loop (owner thread)
     def _loop(self) -> None:
-        assert self._tracker is not None
         ready: list[Path] = []     # finished, in arrival order, not yet handed to intake
         while not self._stop.is_set():
             self._wake.clear()
-            self._log_signals()
+            self._signals.log_arrived()
             if self._reload_requested or self._reload_check_due:
                 forced, self._reload_requested, self._reload_check_due = self._reload_requested, False, False
-                self._check_reload(forced)
+                self.check_reload(forced)
             if self._idle_due:
                 self._idle_due = False
                 self._close_idle()
+            if self._edges_due:
+                self._edges_due = False
+                self._check_edges()
             self._run_calls()
+            tracker = self.components.watching.tracker    # after a reload: the tracker now in force
             if not self._paused():
                 known = set(ready)
-                ready += [p for p in self._tracker.look() if p not in known]
+                ready += [p for p in tracker.look() if p not in known]
                 if ready:          # one batch per turn, so reloads, idle closing and stop are not held up
                     n = min(BATCH_FILES, self._pause_after - self.files_done if self._pause_after else BATCH_FILES)
                     batch, ready = ready[:n], ready[n:]
                     self._process(batch)
+            self.passes += 1
             if ready and not self._paused():
                 continue
-            pending = len(self._tracker)
+            pending = len(tracker)
             if not pending:
                 self._flush_intake()
-            settle = self._config.watch.settle_seconds
+            settle = self.components.config.watch.settle_seconds
             timeout = min(0.25, max(0.05, settle / 5)) if pending and not self._paused() else 5.0
             self._wake.wait(timeout)
         # files still in ``ready`` stay in the drop folder: the next start's scan takes them
@@ -336,50 +356,44 @@ class Daemon(Reloading, SignalHandling):
     def _run_calls(self) -> None:
         while True:
             try:
-                fn, fut = self._calls.get_nowait()
+                call = self._calls.get_nowait()
             except queue.Empty:
                 return
-            if not fut.set_running_or_notify_cancel():
-                continue
-            try:
-                fut.set_result(fn())
-            except BaseException as exc:  # handed to the caller through the future
-                fut.set_exception(exc)
+            call()
 
     def _kick_drain(self) -> None:
         """Wake the channels' delivery threads so a new alert goes out now, not at the next tick."""
-        kick = getattr(self._dispatcher, "kick", None)
-        if callable(kick):
-            kick()
+        parts = self._parts
+        if parts is not None and parts.dispatcher is not None:
+            parts.dispatcher.kick()
 
     def _paused(self) -> bool:
         return bool(self._pause_after) and self.files_done >= self._pause_after
 
     def _process(self, paths: list[Path]) -> None:
-        """Hand finished files to intake, in arrival order: one commit for a backlog when intake offers it."""
+        """Hand finished files to intake, in arrival order: one commit for a backlog."""
+        parts = self.components
+        intake = parts.core.intake
         for path in paths:
             self._event("file-finished", {"path": str(path)})
-        batch = getattr(self._intake, "process_batch", None)
         try:
-            outcomes = list(batch(paths)) if batch is not None and len(paths) > 1 else \
-                [self._intake.process(p) for p in paths]
+            outcomes = intake.process_batch(paths) if len(paths) > 1 else [intake.process(p) for p in paths]
         except Exception:  # intake never raises for bad data; anything else is a bug we survive
             log.exception("processing %s failed unexpectedly; left in the drop folder for a retry",
                           ", ".join(p.name for p in paths))
-            assert self._tracker is not None
             for p in paths:
-                self._tracker.hint(p)  # retried after the settle time; intake's dedup keeps it exactly once
+                parts.watching.tracker.hint(p)  # retried after the settle time; intake's dedup keeps it exactly once
             return
         self.files_done += len(outcomes)
         kick = False
         for path, outcome in zip(paths, outcomes, strict=False):
-            describe = getattr(outcome, "describe", None)
-            text = describe() if callable(describe) else repr(outcome)
-            status = getattr(outcome, "status", "")
-            noisy = status in ("rejected", "duplicate", "unreadable", "vanished", "ignored")
-            (log.warning if noisy else log.info)("%s", text)
-            kick = kick or bool(getattr(outcome, "alerts", True))
-            self._move_marker(path, outcome)
+            noisy = outcome.status in ("rejected", "duplicate", "unreadable", "vanished", "ignored")
+            if outcome.status == "waiting":   # a fault keeps it in the drop folder: the fault is logged once per step
+                log.debug("%s", outcome.describe())
+            else:
+                (log.warning if noisy else log.info)("%s", outcome.describe())
+            kick = kick or bool(outcome.alerts)
+            self._move_marker(parts, path, outcome)
             self._event("file-processed", {"path": str(path), "outcome": outcome})
         if kick:   # new alerts: deliver now rather than at the next drain tick
             self._kick_drain()
@@ -387,33 +401,29 @@ class Daemon(Reloading, SignalHandling):
             log.warning("%s=%d reached: taking no more files", PAUSE_ENV, self._pause_after)
 
     def _flush_intake(self) -> None:
-        flush = getattr(self._intake, "flush", None)
-        if flush is None:
+        if self._core is None:
             return
         try:
-            flush()
+            self._core.intake.flush()
         except Exception:
             log.exception("recording archive moves failed; recover() finds them at the next start")
 
-    def _move_marker(self, path: Path, outcome: Any) -> None:
+    def _move_marker(self, parts: Components, path: Path, outcome: FileOutcome) -> None:
         """Move the profile's marker file next to where its export went (nothing is deleted)."""
-        suffix = self._marker_for(path)
+        suffix = parts.watching.markers(path)
         if not suffix:
             return
         marker = Path(str(path) + suffix)
-        dest_of_export = getattr(outcome, "archived_path", None) or getattr(outcome, "moved_to", None)
-        if not marker.exists() or not dest_of_export:
+        if not marker.exists() or not outcome.moved_to:
             return
-        from monitor.daemon.archive import free_name, move_file
-
         try:
-            move_file(marker, free_name(Path(dest_of_export).parent, marker.name))   # never overwrites
+            archive.move_beside(marker, Path(outcome.moved_to))  # never overwrites
         except OSError as exc:
             log.warning("cannot move marker %s: %s", marker, exc)
 
-    def _close_idle(self, idle_seconds_override: float | None = None) -> Any:
+    def _close_idle(self, idle_seconds_override: float | None = None) -> list[Verdict] | None:
         try:
-            result = self._intake.close_idle(idle_seconds_override=idle_seconds_override)
+            result = self.components.core.intake.close_idle(idle_seconds_override=idle_seconds_override)
         except Exception:
             log.exception("closing idle lots failed; will try again")
             return None
@@ -424,31 +434,40 @@ class Daemon(Reloading, SignalHandling):
             self._event("lots-closed", {"result": result})
         return result
 
-    # ------------------------------------------------------------------ alerts
-    def _emit_alert(self, kind: str, dedup_key: str, data: dict[str, Any]) -> bool:
-        """Store one daemon alert built by hand (kept for callers not yet on ``monitor.alerts.kinds``)."""
-        return self._store_alert(Alert(kind=kind, dedup_key=dedup_key, created_at=utc_now_iso(), data=data))
-
-    def _store_alert(self, alert: Alert) -> bool:
-        """Store one daemon alert in the outbox in its own write transaction and wake the channels."""
-        from monitor.state.outbox import enqueue
-
+    def _check_edges(self) -> None:
+        """Archived files that changed after they were taken (recorded with their alert by intake), and the
+        alerts of faults that have lasted or cleared; an alert that cannot be stored (the database is the
+        fault) is kept and tried again at the next tick; intake has logged the fault meanwhile."""
+        intake = self.components.core.intake
         try:
-            with self._store.write() as conn:
-                new = enqueue(conn, alert, self._config.alerts.channels)
+            if intake.check_taken():
+                self._kick_drain()
+            self._fault_events += intake.fault_alerts()
         except Exception:
-            log.exception("could not store the %s alert", alert.kind)
+            log.exception("checking taken files failed; will try again")
+        kept: list[FaultEvent] = []
+        for ev in self._fault_events:
+            if not self._store_alert(_fault_alert(ev, utc_now_iso()), quiet=True):
+                kept.append(ev)
+        self._fault_events = kept
+
+    # ------------------------------------------------------------------ alerts and records
+    def _store_alert(self, alert: Alert, *, quiet: bool = False) -> bool:
+        if self._core is None or self._config is None:
+            return False
+        try:
+            with self._core.store.write() as conn:
+                new = outbox.enqueue(conn, alert, self._config.alerts.channels)
+        except Exception as exc:
+            if quiet:   # the caller keeps the alert and tries again; the fault itself is logged by intake
+                log.debug("could not store the %s alert yet: %s", alert.kind, exc)
+            else:
+                log.exception("could not store the %s alert", alert.kind)
             return False
         self._kick_drain()
         return new
 
-    def _audit(self, event: str, **detail: Any) -> None:
-        try:
-            self._store.record_event(datetime.now(UTC), event, **detail)
-        except Exception:
-            log.exception("could not write the %s audit record", event)
-
-    def _event(self, kind: str, details: dict[str, Any]) -> None:
+    def _event(self, kind: str, details: dict[str, object]) -> None:
         if self.on_event is not None:
             try:
                 self.on_event(kind, details)
@@ -458,48 +477,53 @@ class Daemon(Reloading, SignalHandling):
     # ------------------------------------------------------------------ shutdown
     def _shutdown(self) -> None:
         """Stop observer and scheduler, record the stop, drain the outbox briefly, close the database."""
-        self._log_signals()
+        self._signals.log_arrived()
         log.info("stopping: %d files processed", self.files_done)
         self._run_calls()
-        if self._intake is not None:
-            self._flush_intake()
-        if self._watcher is not None:
-            self._watcher.stop()
+        self._flush_intake()
+        parts = self._parts
+        if parts is not None:
+            parts.watching.watcher.stop()
         sched, self._scheduler = self._scheduler, None
         if sched is not None:
             _bounded(lambda: sched.shutdown(wait=True), STOP_DRAIN_SECONDS, "scheduler shutdown")
         if self._skipped_filter is not None:
             self._skipped_filter.remove()
             self._skipped_filter = None
-        if self._store is not None:
+        if self._core is not None:
             self._store_alert(kinds.daemon_stopped(started_at=self._started_at, stopped_at=utc_now_iso(),
                                                    files=self.files_done))
-        if self._dispatcher is not None:
+        dispatcher = parts.dispatcher if parts is not None else None
+        if dispatcher is not None:
             # each channel makes a last pass (a stuck mail server is cut short); unsent alerts stay queued
-            d = self._dispatcher
-            stop = getattr(d, "stop", None)
-            if callable(stop):
-                _bounded(lambda: stop(STOP_DRAIN_SECONDS), STOP_DRAIN_SECONDS + 2.0, "final outbox drain")
-            else:
-                _bounded(lambda: d.drain(flush=True), STOP_DRAIN_SECONDS, "final outbox drain")
-        self._close_quietly()
+            _bounded(lambda: dispatcher.stop(STOP_DRAIN_SECONDS), STOP_DRAIN_SECONDS + 2.0, "final outbox drain")
+            try:
+                dispatcher.close()
+            except Exception:
+                log.exception("close failed")
+        if self._core is not None:
+            self._core.close()
+        self._parts = None
+        self._core = None
         self._event("stopped", {"files": self.files_done})
         log.info("stopped")
 
-    def _close_quietly(self) -> None:
-        for obj in (self._dispatcher, self._store):
-            if obj is not None:
-                try:
-                    obj.close()
-                except Exception:
-                    log.exception("close failed")
-        self._dispatcher = self._store = None
-        if self._lock is not None:
-            self._lock.release()
-            self._lock = None
+
+def _changed_alert(change: ChangedFile, at: str) -> Alert:
+    """The alert stored with the audit record of a file changed after it was taken."""
+    return kinds.file_changed_after_take(file_id=change.file_id, detail=change.detail(), at=at)
 
 
-def _bounded(fn: Callable[[], Any], seconds: float, what: str) -> None:
+def _fault_alert(ev: FaultEvent, at: str) -> Alert:
+    """``fault-persisting`` for a fault that has lasted, ``fault-cleared`` for one told before that has gone."""
+    if isinstance(ev, Cleared):
+        return kinds.fault_cleared(key=ev.key, message=ev.message, attempts=ev.attempts,
+                                   lasted_seconds=ev.lasted_seconds, first_at=ev.first_at, at=at)
+    return kinds.fault_persisting(key=ev.key, message=ev.message, attempts=ev.attempts,
+                                  lasting_seconds=ev.lasting_seconds, first_at=ev.first_at, at=at)
+
+
+def _bounded(fn: Callable[[], object], seconds: float, what: str) -> None:
     """Run ``fn`` in a helper thread and wait at most ``seconds`` for it."""
     def guarded() -> None:
         try:

@@ -6,46 +6,52 @@ import logging
 import signal
 import threading
 from collections.abc import Callable
-from typing import Any
+from types import FrameType
 
 log = logging.getLogger("lotwarden.daemon")
 
+Handler = Callable[[int, FrameType | None], object] | int | signal.Handlers | None
+
 
 class SignalHandling:
-    """Mixin for the daemon: installs and restores the handlers and logs what arrived from the loop thread.
+    """Installs and restores the handlers; the loop thread logs what arrived (``log_arrived``).
 
-    The host class provides ``_signals`` (a list of signal names), ``stop()`` and ``request_reload()``.
+    ``stop`` is called for SIGTERM/SIGINT and ``reload`` for SIGHUP, from the signal handler: both must
+    only set flags.
     """
 
-    _signals: list[str]
-    stop: Callable[[], None]
-    request_reload: Callable[[], None]
+    def __init__(self, stop: Callable[[], None], reload: Callable[[], None]) -> None:
+        self._stop = stop
+        self._reload = reload
+        self.arrived: list[str] = []
 
-    def _install_signals(self) -> dict[int, Any]:
+    def install(self) -> dict[int, Handler]:
+        """Install the handlers (main thread only; elsewhere nothing is installed); return the old ones."""
         if threading.current_thread() is not threading.main_thread():
             return {}
-        old: dict[int, Any] = {}
+        old: dict[int, Handler] = {}
         for sig, fn in ((signal.SIGTERM, self._on_stop_signal), (signal.SIGINT, self._on_stop_signal),
                         (signal.SIGHUP, self._on_hup)):
             old[sig] = signal.signal(sig, fn)
         return old
 
-    def _restore_signals(self, old: dict[int, Any]) -> None:
+    @staticmethod
+    def restore(old: dict[int, Handler]) -> None:
         for sig, fn in old.items():
             signal.signal(sig, fn)
 
     # Handlers only set flags (no logging inside a signal handler); the loop logs what arrived.
-    def _on_stop_signal(self, signum: int, frame: Any) -> None:
-        self._signals.append(signal.Signals(signum).name)
-        self.stop()
+    def _on_stop_signal(self, signum: int, frame: FrameType | None) -> None:
+        self.arrived.append(signal.Signals(signum).name)
+        self._stop()
 
-    def _on_hup(self, signum: int, frame: Any) -> None:
-        self._signals.append("SIGHUP")
-        self.request_reload()
+    def _on_hup(self, signum: int, frame: FrameType | None) -> None:
+        self.arrived.append("SIGHUP")
+        self._reload()
 
-    def _log_signals(self) -> None:
-        while self._signals:
-            name = self._signals.pop(0)
+    def log_arrived(self) -> None:
+        while self.arrived:
+            name = self.arrived.pop(0)
             if name == "SIGHUP":
                 log.info("SIGHUP: reloading config and rules")
             else:

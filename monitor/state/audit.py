@@ -34,3 +34,17 @@ def records(conn: sqlite3.Connection, event: str | None = None) -> list[AuditRec
     rows = (conn.execute(sql + " WHERE event = ? ORDER BY id", (event,)) if event is not None
             else conn.execute(sql + " ORDER BY id"))
     return [AuditRecord(*r) for r in rows]
+
+
+def file_ids_since(conn: sqlite3.Connection, event: str, stop_iso: str) -> set[int]:
+    """Files with an ``event`` record written at or after ``stop_iso``. The audit table is append-only and has
+    no index on ``at``: it is read newest first and the read stops at the first record older than ``stop_iso``."""
+    found: set[int] = set()
+    cur = conn.execute("SELECT at, event, file_id FROM audit ORDER BY id DESC")
+    for at, ev, file_id in cur:
+        if at < stop_iso:
+            break
+        if ev == event and file_id is not None:
+            found.add(int(file_id))
+    cur.close()
+    return found

@@ -65,9 +65,15 @@ def write_tx(conn: sqlite3.Connection) -> Iterator[sqlite3.Connection]:
     try:
         yield conn
     except BaseException:
-        conn.execute("ROLLBACK")
+        if conn.in_transaction:   # SQLite has already rolled back on a full disk or an I/O error
+            conn.execute("ROLLBACK")
         raise
-    conn.execute("COMMIT")
+    try:
+        conn.execute("COMMIT")
+    except BaseException:   # e.g. the disk filled at commit: leave no transaction open behind
+        if conn.in_transaction:
+            conn.execute("ROLLBACK")
+        raise
 
 
 @contextmanager

@@ -11,6 +11,7 @@ import sqlite3
 from collections.abc import Iterable
 from typing import NamedTuple
 
+from monitor.state import audit
 from monitor.state.database import inserted_id
 
 
@@ -64,6 +65,19 @@ class ProcessedFile(NamedTuple):
     processed_at: str
     path: str
     reason: str | None
+
+
+class TakenFile(NamedTuple):
+    """A settled, archived file as it was when taken (size and mtime from the read), for the after-take check."""
+
+    id: int
+    path: str
+    archived_path: str
+    size: int
+    mtime: float
+    sha256: str
+    processed_at: str
+    state: str
 
 
 class FileRow(NamedTuple):
@@ -125,6 +139,29 @@ def unarchived(conn: sqlite3.Connection) -> list[Unarchived]:
     """Files whose move is not recorded yet, oldest first."""
     return [Unarchived(*r) for r in conn.execute("SELECT id, path, archived_path, state, sha256 FROM files"
                                                  " WHERE archived_at IS NULL ORDER BY id")]
+
+
+def taken_since(conn: sqlite3.Connection, since_iso: str, stop_iso: str, event: str) -> list[TakenFile]:
+    """Done or duplicate files archived and processed from ``since_iso`` on that have no audit record ``event``
+    (the after-take check's list: a change is recorded once), oldest first.
+
+    The files table has no index on ``processed_at``; ids grow with processing, so rows are read newest first
+    and the read stops at the first row processed before ``stop_iso`` (some slack before ``since_iso``)."""
+    out: list[TakenFile] = []
+    cur = conn.execute("SELECT id, path, archived_path, size, mtime, sha256, processed_at, state, archived_at"
+                       " FROM files ORDER BY id DESC")
+    for row in cur:
+        processed_at = row[6]
+        if processed_at is not None and processed_at < stop_iso:
+            break
+        if (row[7] in ("done", "duplicate") and row[8] is not None and row[2] is not None
+                and processed_at is not None and processed_at >= since_iso):
+            out.append(TakenFile(*row[:8]))
+    cur.close()
+    if not out:
+        return out
+    recorded = audit.file_ids_since(conn, event, stop_iso)
+    return [t for t in reversed(out) if t.id not in recorded]
 
 
 def processed_since(conn: sqlite3.Connection, since_iso: str) -> list[ProcessedFile]:

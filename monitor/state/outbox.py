@@ -4,8 +4,9 @@ The tables are created by ``monitor.state.schema`` (``Database.open``).
 
 ``enqueue`` runs inside the caller's open write transaction (it never commits), so an alert is stored
 if and only if the change that raised it is. Delivery states: pending -> sent | dead | suppressed
-("suppressed": a repeat hold inside the reminder interval; the reason is kept in last_error). Nothing is
-ever deleted.
+("suppressed": a repeat hold inside the reminder interval; the reason is kept in last_error). An e-mail
+message is recorded in ``email_batches`` before it is sent and finished with its alerts. Nothing is ever
+deleted.
 """
 
 from __future__ import annotations
@@ -13,6 +14,7 @@ from __future__ import annotations
 import json
 import sqlite3
 from collections.abc import Iterable
+from dataclasses import dataclass
 
 from monitor.alerts.alert import Alert
 from monitor.state.database import connect as connect  # re-exported: each delivery thread opens one
@@ -98,6 +100,77 @@ def record_email(conn: sqlite3.Connection, *, message_id: str, sent_at: float, r
                      [(rc, sent_at) for rc in recipients])
     conn.executemany("INSERT INTO email_lot_notices(line, product, lot, notified_at) VALUES (?,?,?,?)",
                      [(ln, p, lot, sent_at) for ln, p, lot in held_lots])
+
+
+@dataclass(frozen=True)
+class EmailBatch:
+    """One e-mail message as recorded before it was handed to the server (``email_batches``)."""
+
+    id: int
+    message_id: str
+    planned_at: float
+    recipients: tuple[str, ...]
+    alert_ids: tuple[int, ...]
+    folded: bool
+    attempts: int
+
+
+def record_batch(conn: sqlite3.Connection, *, message_id: str, planned_at: float, recipients: tuple[str, ...],
+                 alert_ids: Iterable[int], folded: bool) -> int:
+    """Record a message about to be sent (state 'sending'); returns its batch id. Never commits."""
+    cur = conn.execute("INSERT INTO email_batches(message_id, planned_at, recipients, alert_ids, folded)"
+                       " VALUES (?,?,?,?,?)", (message_id, planned_at, json.dumps(list(recipients)),
+                                               json.dumps(list(alert_ids)), int(folded)))
+    if cur.lastrowid is None:
+        raise RuntimeError("email_batches: no row was inserted")
+    return int(cur.lastrowid)
+
+
+def unfinished_batches(conn: sqlite3.Connection) -> list[EmailBatch]:
+    """The recorded messages still 'sending' (cut short by a crash, or waiting for a retry), oldest first."""
+    rows = conn.execute("SELECT id, message_id, planned_at, recipients, alert_ids, folded, attempts"
+                        " FROM email_batches WHERE state = 'sending' ORDER BY id").fetchall()
+    return [EmailBatch(int(i), str(mid), float(at), tuple(json.loads(rc)), tuple(int(x) for x in json.loads(ids)),
+                       bool(folded), int(att)) for i, mid, at, rc, ids, folded, att in rows]
+
+
+def batch_attempted(conn: sqlite3.Connection, batch_id: int) -> None:
+    """One more attempt at sending a recorded message (before it is handed to the server again)."""
+    conn.execute("UPDATE email_batches SET attempts = attempts + 1 WHERE id = ? AND state = 'sending'", (batch_id,))
+
+
+def finish_batch(conn: sqlite3.Connection, batch_id: int, state: str, finished_at: float, note: str = "") -> None:
+    """A recorded message is settled: 'sent', 'failed' (given up) or 'dropped' (none of its alerts is still
+    pending). Runs in the transaction that settles its alerts; never commits."""
+    if state not in ("sent", "failed", "dropped"):
+        raise ValueError(f"email batch state {state!r}: must be sent, failed or dropped")
+    conn.execute("UPDATE email_batches SET state = ?, finished_at = ?, note = ? WHERE id = ? AND state = 'sending'",
+                 (state, finished_at, note[:ERROR_CHARS] or None, batch_id))
+
+
+def pending_among(conn: sqlite3.Connection, channel: str, alert_ids: Iterable[int]) -> set[int]:
+    """The alerts among ``alert_ids`` whose delivery on ``channel`` is still pending."""
+    ids = list(alert_ids)
+    out: set[int] = set()
+    for start in range(0, len(ids), 500):
+        chunk = ids[start:start + 500]
+        marks = ",".join("?" * len(chunk))
+        out.update(int(r[0]) for r in conn.execute(
+            f"SELECT alert_id FROM deliveries WHERE channel = ? AND state = 'pending' AND alert_id IN ({marks})",
+            [channel, *chunk]))
+    return out
+
+
+def alerts_by_id(conn: sqlite3.Connection, alert_ids: Iterable[int]) -> dict[int, Alert]:
+    """{alert_id: Alert} of the stored alerts among ``alert_ids``."""
+    ids = list(alert_ids)
+    out: dict[int, Alert] = {}
+    for start in range(0, len(ids), 500):
+        chunk = ids[start:start + 500]
+        marks = ",".join("?" * len(chunk))
+        for rid, payload in conn.execute(f"SELECT id, payload FROM alerts WHERE id IN ({marks})", chunk):
+            out[int(rid)] = Alert.from_json(json.loads(payload))
+    return out
 
 
 def recipient_sends(conn: sqlite3.Connection, since: float) -> dict[str, list[float]]:

@@ -12,6 +12,8 @@ Versions:
   2  lot_values.excluded, lot_summaries.problem, verdicts.lot_rows (added columns; old rows get the default).
   3  the senders' bookkeeping tables (email_messages, email_recipient_sends, email_lot_notices, digest_runs)
      are part of the schema, created at start-up instead of by the first sender.
+  4  email_batches: each e-mail message recorded (Message-ID, alerts, recipients) before it is handed to
+     the server, so a message cut short by a crash is repeated as it was, under the same Message-ID.
 
 The DDL of each migration is frozen as it was at its version: a later change is a new migration, never an
 edit of an old one.
@@ -27,7 +29,7 @@ from pathlib import Path
 from monitor.errors import LotwardenError
 from monitor.state.database import get_meta, set_meta, table_columns, table_names
 
-CURRENT_VERSION = 3
+CURRENT_VERSION = 4
 VERSION_KEY = "schema_version"
 
 # Version 2's tables, as a database of version 2 has them (a version-1 database lacks some; each is
@@ -206,6 +208,26 @@ CREATE TABLE IF NOT EXISTS digest_runs (
 """
 
 
+# Version 4: the e-mail messages planned and not yet finished. A row is written ('sending') in its own
+# transaction before the message goes to the server and finished ('sent' | 'failed' | 'dropped') in the
+# transaction that settles its alerts; a row still 'sending' at the next drain is sent again as recorded.
+TABLES_V4 = """
+CREATE TABLE IF NOT EXISTS email_batches (
+    id          INTEGER PRIMARY KEY,
+    message_id  TEXT NOT NULL,
+    planned_at  REAL NOT NULL,          -- unix seconds: the message's Date
+    recipients  TEXT NOT NULL,          -- JSON list: the envelope recipients
+    alert_ids   TEXT NOT NULL,          -- JSON list of alerts.id, in the message's order
+    folded      INTEGER NOT NULL DEFAULT 0,
+    state       TEXT NOT NULL DEFAULT 'sending' CHECK (state IN ('sending', 'sent', 'failed', 'dropped')),
+    attempts    INTEGER NOT NULL DEFAULT 1,
+    finished_at REAL,                   -- unix seconds, once no longer 'sending'
+    note        TEXT                    -- why failed / dropped
+);
+CREATE INDEX IF NOT EXISTS email_batches_state ON email_batches(state, id);
+"""
+
+
 class SchemaVersionError(LotwardenError):
     """The state database's schema version is one this code cannot use (newer than it, or not a number)."""
 
@@ -245,11 +267,16 @@ def _to_v3(conn: sqlite3.Connection) -> None:
     _run_script(conn, TABLES_V3)
 
 
+def _to_v4(conn: sqlite3.Connection) -> None:
+    _run_script(conn, TABLES_V4)
+
+
 # Version 1 has no step: a new database (nothing in it) is treated as "before version 2" and built by the
 # steps from 2 on, which create every table they need if missing.
 MIGRATIONS: tuple[Migration, ...] = (
     Migration(2, "add lot_values.excluded, lot_summaries.problem, verdicts.lot_rows", _to_v2),
     Migration(3, "create the senders' tables (e-mail bookkeeping, digest_runs)", _to_v3),
+    Migration(4, "create email_batches (messages recorded before they are sent)", _to_v4),
 )
 assert [m.version for m in MIGRATIONS] == list(range(2, CURRENT_VERSION + 1))
 

@@ -174,7 +174,7 @@ def shapiro_wilk_rows(sorted_rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     xs = np.asarray(sorted_rows, dtype=np.float64)
     if xs.ndim != 2:
         raise ValueError("sorted_rows must be a 2-D array (one sample per row)")
-    k, n = xs.shape
+    n = xs.shape[1]
     coef = shapiro_coefficients(n)
     with np.errstate(all="ignore"):
         shifted = xs - xs[:, n // 2: n // 2 + 1]        # centre on a middle value first: less rounding

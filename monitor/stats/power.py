@@ -69,10 +69,10 @@ def power(n: np.ndarray | int, shift: float | np.ndarray, sd: float | np.ndarray
         one_sided = alternative != "two-sided"
         a = alpha if one_sided else alpha / 2.0
         if known_sd:
-            crit = float(critical_value(a, "greater", None))
-            result = special.ndtr(delta - crit)
+            z_crit = float(critical_value(a, "greater", None))
+            result = special.ndtr(delta - z_crit)
             if not one_sided:
-                result = result + special.ndtr(-delta - crit)
+                result = result + special.ndtr(-delta - z_crit)
         else:
             df = nn - 1.0
             crit = np.asarray(critical_value(a, "greater", np.broadcast_to(df, np.broadcast(df, delta).shape)))
@@ -118,7 +118,7 @@ def n_for_power(shift: float | np.ndarray, sd: float | np.ndarray, alpha: float,
     d = np.where(ok, d, 1.0)
 
     def reaches(n: np.ndarray) -> np.ndarray:
-        return power(n, s, d, alpha, alternative, known_sd) >= target_power
+        return np.asarray(power(n, s, d, alpha, alternative, known_sd)) >= target_power
 
     # Bracket around the normal-theory size ((z_a + z_power)·σ/δ)², which Student's t exceeds by about
     # z_a²/2; widen (halve / double) where the guess misses, then bisect the bracket.
@@ -136,7 +136,7 @@ def n_for_power(shift: float | np.ndarray, sd: float | np.ndarray, alpha: float,
     fits = ok & np.isfinite(centre) & (centre - _WINDOW >= 2) & (centre + _WINDOW < MAX_PLAN_N)
     if fits.any():
         cand = centre[fits, None].astype(np.int64) + window[None, :]
-        hit = power(cand, s[fits, None], d[fits, None], alpha, alternative, known_sd) >= target_power
+        hit = np.asarray(power(cand, s[fits, None], d[fits, None], alpha, alternative, known_sd)) >= target_power
         inside = ~hit[:, 0] & hit[:, -1]
         first = np.argmax(hit, axis=1)
         rows = np.flatnonzero(fits)[inside]
@@ -245,4 +245,4 @@ def power_curve(sd: float, shift: float, alpha: float, alternative: str,
     if not sizes:
         return []
     p = np.atleast_1d(power(np.array(sizes), shift, sd, alpha, alternative, known_sd))
-    return list(zip(sizes, (float(v) for v in p)))
+    return list(zip(sizes, (float(v) for v in p), strict=True))

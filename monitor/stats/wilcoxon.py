@@ -189,8 +189,13 @@ def _null_counts(n: int) -> tuple[int, ...]:
 
 def _exact_p(r_plus: float, n: int, alternative: str) -> float:
     counts = np.array(_null_counts(n), dtype=np.float64) / 2.0 ** n
-    cdf = lambda k: float(counts[: k + 1].sum()) if k >= 0 else 0.0          # P(T+ <= k)
-    sf = lambda k: float(counts[max(k, 0):].sum())                           # P(T+ >= k)
+
+    def cdf(k: int) -> float:                                                # P(T+ <= k)
+        return float(counts[: k + 1].sum()) if k >= 0 else 0.0
+
+    def sf(k: int) -> float:                                                 # P(T+ >= k)
+        return float(counts[max(k, 0):].sum())
+
     lo, hi = int(np.ceil(r_plus)), int(np.floor(r_plus))
     if alternative == "less":
         return cdf(lo)

@@ -42,6 +42,11 @@ def sample_alerts() -> dict[str, object]:
         "daemon-started": kinds.daemon_started(started_at=at, config="c.toml", rules=["oat-500"]),
         "daemon-stopped": kinds.daemon_stopped(started_at=at, stopped_at=at, files=2),
         "digest": kinds.digest(due_at=at, data={"lines": []}, at=at),
+        "file-changed-after-take": kinds.file_changed_after_take(file_id=7, detail={"file": "z.csv"}, at=at),
+        "fault-persisting": kinds.fault_persisting(key="archive: ENOSPC", message="disk full", attempts=9,
+                                                   lasting_seconds=200.0, first_at=1764655200.0, at=at),
+        "fault-cleared": kinds.fault_cleared(key="archive: ENOSPC", message="disk full", attempts=9,
+                                             lasted_seconds=300.0, first_at=1764655200.0, at=at),
     }
 
 

@@ -73,8 +73,7 @@ def test_a_lot_spans_files_and_closes_when_the_next_lot_starts(intake_env) -> No
 
 def test_verdict_numbers_match_scipy(intake_env, engine_ready: bool) -> None:
     """The judged lot's t statistic and p-value equal scipy.stats.ttest_1samp on the same values."""
-    if not engine_ready:
-        pytest.skip("monitor.engine.evaluate is not implemented yet")
+    assert engine_ready
     cfg, store, intake, drop = intake_env
     f1 = write_export(drop, "L1-a.csv", oat("OAT-24A101", A_VALUES_1))
     f2 = write_export(drop, "L1-b.csv", oat("OAT-24A101", A_VALUES_2))
@@ -181,13 +180,13 @@ def test_summary_rows_are_lots_of_their_own(intake_env, engine_ready: bool) -> N
     assert store.conn.execute("SELECT count(*) FROM lot_summaries").fetchone()[0] == 2
     assert store.conn.execute("SELECT count(*) FROM lot_values").fetchone()[0] == 0
     assert store.conn.execute("SELECT count(*) FROM lots").fetchone()[0] == 0
-    if engine_ready:
-        # one-sample t from summary statistics: t = (mean - target) / (sd / sqrt(n)), df = n - 1;
-        # two-sided p from scipy.stats.t.sf (reference library)
-        t = (501.1 - 500.0) / (1.3 / math.sqrt(30))
-        v = out.verdicts[1]
-        assert v.statistic == pytest.approx(t, rel=1e-12)
-        assert v.p_value == pytest.approx(2 * scipy.stats.t.sf(abs(t), 29), rel=1e-9)
+    assert engine_ready
+    # one-sample t from summary statistics: t = (mean - target) / (sd / sqrt(n)), df = n - 1;
+    # two-sided p from scipy.stats.t.sf (reference library)
+    t = (501.1 - 500.0) / (1.3 / math.sqrt(30))
+    v = out.verdicts[1]
+    assert v.statistic == pytest.approx(t, rel=1e-12)
+    assert v.p_value == pytest.approx(2 * scipy.stats.t.sf(abs(t), 29), rel=1e-9)
 
 
 def test_rule_reload_applies_to_lots_closed_afterwards(intake_env) -> None:
@@ -243,8 +242,7 @@ def test_a_lot_closed_in_the_same_batch_is_judged_like_scipy(intake_env, monkeyp
                                                              recent_max: int) -> None:
     """A lot stored and closed within one batch (from memory, or read back when longer than the memory
     limit) gets the t statistic and p-value of scipy.stats.ttest_1samp and names its files in order."""
-    if not engine_ready:
-        pytest.skip("monitor.engine.evaluate is not implemented yet")
+    assert engine_ready
     from monitor.daemon import judge
 
     monkeypatch.setattr(judge, "RECENT_LOT_MAX", recent_max)

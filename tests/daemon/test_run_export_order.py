@@ -12,6 +12,7 @@ from pathlib import Path
 import plant
 from plant import HEADER
 from test_run_daemon import Proc, done_files, query
+
 from monitor.polling import wait_until
 
 SETTLE = 1.5

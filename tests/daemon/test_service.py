@@ -62,6 +62,14 @@ class Running:
 
 
 
+def passes_later(daemon: Daemon, n: int, *, seconds: float = 0.0, timeout: float = 20.0) -> bool:
+    """Wait until the run loop has completed ``n`` more passes (each looks at every pending file) and, when
+    ``seconds`` is given, at least that long has gone by: the positive signal that the daemon had its chances
+    to do what a test says it must not do."""
+    start, t0 = daemon.passes, time.monotonic()
+    return wait_for(lambda: daemon.passes >= start + n and time.monotonic() - t0 >= seconds, timeout)
+
+
 def query(db: Path, sql: str, *args):
     conn = sqlite3.connect(f"file:{db}?mode=ro", uri=True, timeout=10)
     try:
@@ -90,9 +98,9 @@ def test_pause_hook_stops_taking_files_after_n(tmp_path, monkeypatch):
     db = tmp_path / "state" / "lotwarden.db"
     for i in range(5):
         (tmp_path / "drop" / f"p-{i}.csv").write_text(HEADER + csv_rows("L1", "P1", [500.0 + i], start=i))
-    with Running(cfg) as r:
+    with Running(cfg, idle_check_seconds=0.05) as r:     # the idle job wakes the paused loop every 0.05 s
         assert wait_for(lambda: r.daemon.files_done >= 2)
-        time.sleep(0.5)
+        assert passes_later(r.daemon, 10)                     # ten more passes, each free to take a file
         assert r.daemon.files_done == 2
     assert count(db, "SELECT count(*) FROM files") == 2
     assert len(list((tmp_path / "drop").glob("p-*.csv"))) == 3
@@ -112,7 +120,7 @@ def test_slow_writer_taken_once_after_last_chunk(tmp_path):
     cfg = make_plant(tmp_path, settle=0.4)
     db = tmp_path / "state" / "lotwarden.db"
     values = [500.0 + (i % 5) * 0.3 for i in range(40)]
-    with Running(cfg):
+    with Running(cfg, idle_check_seconds=0.05) as r:
         target = tmp_path / "drop" / "slow.csv"
         with open(target, "w", encoding="utf-8") as fh:
             fh.write(HEADER)
@@ -121,7 +129,10 @@ def test_slow_writer_taken_once_after_last_chunk(tmp_path):
                 fh.flush()
                 time.sleep(0.15)
         assert wait_for(lambda: count(db, "SELECT count(*) FROM files") >= 1)
-        time.sleep(0.6)   # a second take would show up within this settle window
+        scans = r.daemon.scans
+        r.daemon.call_soon(lambda d: d._rescan()).result(10)   # the folder is looked at again ...
+        assert r.daemon.scans > scans
+        assert passes_later(r.daemon, 10, seconds=0.6)       # ... and given more than a settle time to take it
     assert count(db, "SELECT count(*) FROM files") == 1
     assert count(db, "SELECT count(*) FROM lot_values") == 40
 
@@ -182,16 +193,17 @@ def test_bad_rule_edit_keeps_running_and_alerts_once(tmp_path):
         rule.write_text(RULE_OAT.replace("alpha = 0.05", "alpha = 1.5"))
         assert wait_for(lambda: count(db, "SELECT count(*) FROM alerts WHERE kind = 'config-rejected'") == 1)
         assert "oat-500.toml" in r.log.getvalue() and "alpha" in r.log.getvalue()
-        time.sleep(1.0)   # the same bad content is checked again several times: still one alert
+        checks = r.daemon.reload_checks
+        assert wait_for(lambda: r.daemon.reload_checks >= checks + 5)  # the same bad content checked 5 more times
         assert count(db, "SELECT count(*) FROM alerts WHERE kind = 'config-rejected'") == 1
         write_atomically(tmp_path / "drop" / "after.csv", HEADER + csv_rows("L1", "K1", [500.0, 500.2]))
         assert wait_for(lambda: count(db, "SELECT count(*) FROM files WHERE state = 'done'") == 1)
         rule.write_text(RULE_OAT.replace("alpha = 0.05", "alpha = 0.01"))
         assert wait_for(lambda: "reloaded" in r.log.getvalue())
-        assert r.daemon._rules[0].alpha == 0.01
+        assert r.daemon.components.rules[0].alpha == 0.01
         rule.write_text("name = [unclosed\n")                                  # TOML syntax error
         assert wait_for(lambda: count(db, "SELECT count(*) FROM alerts WHERE kind = 'config-rejected'") == 2)
-        assert r.daemon._rules[0].alpha == 0.01                               # last good version in force
+        assert r.daemon.components.rules[0].alpha == 0.01                               # last good version in force
     rejected = query(db, "SELECT payload FROM alerts WHERE kind = 'config-rejected' ORDER BY id")
     assert "alpha" in json.loads(rejected[0][0])["data"]["message"]
 
@@ -208,7 +220,7 @@ def test_config_edits_unknown_key_rejected_and_rule_removal_kept(tmp_path):
         cfg.write_text(good)
         (tmp_path / "rules" / "oat-500.toml").unlink()
         assert wait_for(lambda: count(db, "SELECT count(*) FROM alerts WHERE kind = 'config-rejected'") == 2)
-        assert [x.name for x in r.daemon._rules] == ["oat-500"]
+        assert [x.name for x in r.daemon.components.rules] == ["oat-500"]
         assert r.thread.is_alive()
     audit = [e for (e,) in query(db, "SELECT event FROM audit")]
     assert audit.count("config-rejected") == 2
@@ -240,9 +252,10 @@ def test_marker_profile_waits_for_the_marker_and_archives_it(tmp_path):
         marker_suffix = ".done"
         """)
     db = tmp_path / "state" / "lotwarden.db"
-    with Running(cfg):
+    with Running(cfg, idle_check_seconds=0.05) as r:
         (tmp_path / "drop" / "m-1.csv").write_text(HEADER + csv_rows("L1", "M1", [500.0, 500.2]))
-        time.sleep(1.0)                                   # five settle times: still waiting for the marker
+        assert wait_for(lambda: (tmp_path / "drop" / "m-1.csv") in r.daemon.components.watching.tracker.pending())
+        assert passes_later(r.daemon, 20, seconds=1.0)    # 20 looks over five settle times: still waiting
         assert count(db, "SELECT count(*) FROM files") == 0
         (tmp_path / "drop" / "m-1.csv.done").write_text("")
         assert wait_for(lambda: count(db, "SELECT count(*) FROM files WHERE state = 'done'") == 1)
@@ -268,10 +281,10 @@ def test_dead_observer_is_restarted_by_the_supervisor(tmp_path):
     cfg = make_plant(tmp_path)
     db = tmp_path / "state" / "lotwarden.db"
     with Running(cfg, supervise_seconds=0.2) as r:
-        obs = r.daemon._watcher._observer
+        obs = r.daemon.components.watching.watcher._observer
         obs.stop()
         obs.join(5)
-        assert wait_for(lambda: r.daemon._watcher.is_alive() and r.daemon._watcher._observer is not obs)
+        assert wait_for(lambda: r.daemon.components.watching.watcher.is_alive() and r.daemon.components.watching.watcher._observer is not obs)
         write_atomically(tmp_path / "drop" / "after-restart.csv", HEADER + csv_rows("L1", "R1", [500.0, 500.1]))
         assert wait_for(lambda: count(db, "SELECT count(*) FROM files WHERE state = 'done'") == 1)
         assert "died" in r.log.getvalue()

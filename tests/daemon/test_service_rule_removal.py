@@ -25,7 +25,7 @@ def test_deleted_rule_survives_an_unrelated_edit_until_sighup(tmp_path: Path) ->
         write_atomically(rules / "jam-340.toml", "# a comment added by the operator\n" + JAM_RULE)
         assert wait_for(lambda: "reloaded:" in r.log.getvalue() and "jam-340" in r.log.getvalue()), \
             r.log.getvalue()
-        assert wait_for(lambda: sorted(x.name for x in r.daemon._rules) == ["jam-340", "oat-500"], 5)
+        assert wait_for(lambda: sorted(x.name for x in r.daemon.components.rules) == ["jam-340", "oat-500"], 5)
         (tmp_path / "drop" / "a.csv").write_text(HEADER + csv_rows("L1", "A1", [500.1, 499.8, 500.3, 500.0, 499.9,
                                                                                  500.2])
                                                  + csv_rows("L1", "A2", [500.0], start=6), encoding="utf-8")
@@ -33,8 +33,9 @@ def test_deleted_rule_survives_an_unrelated_edit_until_sighup(tmp_path: Path) ->
         [(rule, reason)] = query(db, "SELECT rule, json_extract(payload, '$.reason') FROM verdicts WHERE lot = 'A1'")
         assert rule == "oat-500" and "no rule matches" not in reason
         assert count(db, rejected) == 1                                  # the unrelated edit raised nothing
-        r.daemon._check_reload(True)         # what SIGHUP runs on the loop thread: the removal is confirmed
-        assert [x.name for x in r.daemon._rules] == ["jam-340"]
+        # what SIGHUP runs, on the loop thread: the removal is confirmed
+        r.daemon.call_soon(lambda d: d.check_reload(True)).result(10)
+        assert [x.name for x in r.daemon.components.rules] == ["jam-340"]
 
 
 def test_the_same_bad_edit_after_a_good_version_alerts_again(tmp_path: Path) -> None:

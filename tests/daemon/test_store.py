@@ -10,7 +10,7 @@ from pathlib import Path
 import pytest
 
 from monitor.alerts.alert import Alert
-from monitor.alerts import outbox
+from monitor.state import outbox
 from monitor.state.database import DB_NAME, utc_iso
 from monitor.state.database import Database as Store
 

@@ -26,7 +26,7 @@ from monitor.state.outbox import enqueue
 
 def email_settings(port: int, timeout: float) -> EmailSettings:
     return EmailSettings(host="127.0.0.1", port=port, security="none", sender="lotwarden@brackenfield.example",
-                         recipients=("qa@brackenfield.example",), timeout=timeout)
+                         recipients=("qa@brackenfield.example",), timeout=timeout, deadline_seconds=3 * timeout)
 
 
 def test_a_dribbled_banner_is_cut_at_the_exchange_deadline():

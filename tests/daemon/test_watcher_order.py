@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import logging
+import os
 from pathlib import Path
 from types import SimpleNamespace
+from typing import cast
 
 import pytest
 
@@ -18,11 +20,11 @@ class FakeFS:
         self.now = 0.0
         self.files: dict[str, tuple[int, int, int]] = {}
 
-    def stat(self, path: str) -> SimpleNamespace:
+    def stat(self, path: str) -> os.stat_result:
         if path not in self.files:
             raise FileNotFoundError(path)
         size, mtime_ns, ino = self.files[path]
-        return SimpleNamespace(st_size=size, st_mtime_ns=mtime_ns, st_ino=ino)
+        return cast(os.stat_result, SimpleNamespace(st_size=size, st_mtime_ns=mtime_ns, st_ino=ino))
 
     def clock(self) -> float:
         return self.now

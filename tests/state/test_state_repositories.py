@@ -250,3 +250,44 @@ def test_read_only_connection_sees_commits_and_cannot_write(db: Database, tmp_pa
         assert [r.lot for r in verdicts.listing(ro)] == ["A1"]
         with pytest.raises(sqlite3.OperationalError, match="readonly"):
             audit.append(ro, AT, "x")
+
+
+def test_email_batches_record_repeat_and_finish(db: Database) -> None:
+    """A recorded message stays 'sending' until finished; only 'sending' ones are listed, oldest first; a
+    finished one is not changed again; the states are the four the schema allows."""
+    from monitor.alerts.alert import Alert
+    from monitor.state import outbox
+
+    def hold(lot: str) -> Alert:
+        return Alert(kind="hold", dedup_key=f"hold|L1|OAT-500|{lot}|r1", created_at="2026-12-01T22:00:00+00:00",
+                     data={"lot": lot}, line="L1", product="OAT-500", lot=lot)
+
+    with db.write() as conn:
+        outbox.enqueue(conn, hold("A1"), ["email"])
+        outbox.enqueue(conn, hold("A2"), ["email"])
+        ids = [r[0] for r in conn.execute("SELECT id FROM alerts ORDER BY id")]
+        first = outbox.record_batch(conn, message_id="<m1@brackenfield.example>", planned_at=10.0,
+                                    recipients=("qa@brackenfield.example",), alert_ids=ids, folded=True)
+        second = outbox.record_batch(conn, message_id="<m2@brackenfield.example>", planned_at=11.0,
+                                     recipients=("qa@brackenfield.example", "l1@brackenfield.example"),
+                                     alert_ids=ids[:1], folded=False)
+        outbox.batch_attempted(conn, first)
+        outbox.mark_sent(conn, ids[0], "email", "2026-12-01T22:00:05+00:00")
+    with db.read() as conn:
+        listed = outbox.unfinished_batches(conn)
+        assert outbox.pending_among(conn, "email", ids) == {ids[1]}
+        assert outbox.alerts_by_id(conn, ids)[ids[1]].lot == "A2"
+    assert [(b.id, b.message_id, b.alert_ids, b.folded, b.attempts) for b in listed] == [
+        (first, "<m1@brackenfield.example>", tuple(ids), True, 2), (second, "<m2@brackenfield.example>", (ids[0],),
+                                                                     False, 1)]
+    with db.write() as conn:
+        outbox.finish_batch(conn, second, "sent", 20.0)
+        outbox.finish_batch(conn, second, "failed", 21.0, "too late")     # already finished: left as it is
+        with pytest.raises(ValueError, match="sending"):
+            outbox.finish_batch(conn, first, "sending", 22.0)
+        with pytest.raises(sqlite3.IntegrityError):                       # the schema's CHECK
+            conn.execute("UPDATE email_batches SET state = 'lost' WHERE id = ?", (first,))
+    with db.read() as conn:
+        assert [b.id for b in outbox.unfinished_batches(conn)] == [first]
+        assert conn.execute("SELECT state, finished_at, note FROM email_batches WHERE id = ?",
+                            (second,)).fetchone() == ("sent", 20.0, None)

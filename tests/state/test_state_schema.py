@@ -1,6 +1,6 @@
-"""The versioned schema on real SQLite files: a version-2 database made by release 0.1.0 and a version-1
-database upgrade in place with every row kept; a database newer than the code is refused; an upgrade is
-whole or not at all."""
+"""The versioned schema on real SQLite files: a version-2 database made by release 0.1.0, a version-3
+database with the senders' rows and a version-1 database upgrade in place with every row kept; a database
+newer than the code is refused; an upgrade is whole or not at all."""
 
 from __future__ import annotations
 
@@ -23,9 +23,9 @@ from monitor.state.schema import CURRENT_VERSION, SchemaVersionError
 FIXTURES = Path(__file__).resolve().parent / "fixtures"
 V2_DB = FIXTURES / "lotwarden-v2.db"
 
-# Every table of the current schema (version 3).
+# Every table of the current schema (version 4).
 TABLES = {"meta", "files", "lots", "lot_values", "lot_summaries", "verdicts", "audit", "alerts", "deliveries",
-          "email_messages", "email_recipient_sends", "email_lot_notices", "digest_runs"}
+          "email_messages", "email_recipient_sends", "email_lot_notices", "digest_runs", "email_batches"}
 # Rows per table in the fixture, as make_v2.py wrote them: two files (a values export, a summary export),
 # lots A1 (9 rows, one blank) and A2 (1 row), one summary record, two verdicts (A1 hold, S2 pass), four
 # audit records (a verdict and a file-taken per file), A1's hold alert with its one log delivery.
@@ -116,7 +116,7 @@ def test_a_version_2_database_upgrades_keeping_every_row(v2_folder: Path) -> Non
     assert scipy.stats.ttest_1samp(usable, 500.0).pvalue < 0.05 and hold.verdict == "hold"
     assert (passed.lot, passed.verdict, passed.summary_id, passed.lot_rows) == ("S2", "pass", summary.id, None)
     assert [r.file_id for r in taken] == [1, 2]
-    assert _version(v2_folder / DB_NAME) == str(CURRENT_VERSION) == "3"
+    assert _version(v2_folder / DB_NAME) == str(CURRENT_VERSION) == "4"
 
 
 def test_an_upgraded_database_is_used_as_before(v2_folder: Path, tmp_path: Path) -> None:
@@ -220,10 +220,67 @@ def test_a_version_1_database_upgrades_keeping_every_row(tmp_path: Path) -> None
     assert (summary.lot, summary.n, summary.problem) == ("S-OLD", 12, "")
     assert (verdict.verdict, verdict.lot_rows, verdict.payload) == ("pass", None, '{"excluded": 1}')
     assert latest is not None and latest.id == verdict.id
-    assert _version(db) == "3"
+    assert _version(db) == "4"
     with Database.open(tmp_path / "state") as again:
         assert _counts(again.conn, {"lot_values", "verdicts"}) == {"lot_values": 5, "verdicts": 1}
-    assert _version(db) == "3"
+    assert _version(db) == "4"
+
+
+# Rows a version-3 database of a daemon that has sent e-mail holds in the senders' tables (invented).
+V3_MESSAGE = ("<lotwarden.0123456789abcdef0123456789abcdef@brackenfield.example>", 1764655200.0,
+              '["qa@brackenfield.example"]', "[1]", 0)
+V3_SENDS = [("qa@brackenfield.example", 1764655200.0), ("shift@brackenfield.example", 1764655260.0)]
+V3_NOTICE = ("L1", "OAT-500", "A1", 1764655200.0)
+V3_DIGEST = ("2026-12-02T06:00:00+00:00", "2026-12-01T06:00:00+00:00", "2026-12-02T06:00:00+00:00",
+             "2026-12-02T06:00:01+00:00", "digest|2026-12-02T06:00:00+00:00")
+
+
+def _write_v3(folder: Path) -> Path:
+    """The v2 fixture brought to version 3 by the frozen DDL of step 3 (the tables as version 3 made them),
+    with a row in each of the senders' tables and A1's hold delivered by e-mail."""
+    folder.mkdir(parents=True, exist_ok=True)
+    db = folder / DB_NAME
+    shutil.copyfile(V2_DB, db)
+    conn = sqlite3.connect(str(db))
+    conn.executescript(schema.TABLES_V3)
+    conn.execute("UPDATE meta SET value = '3' WHERE key = 'schema_version'")
+    conn.execute("INSERT INTO deliveries(alert_id, channel, state, attempts, sent_at) VALUES (1, 'email', 'sent', 1,"
+                 " '2026-12-02T06:00:00+00:00')")
+    conn.execute("INSERT INTO email_messages(message_id, sent_at, recipients, alert_ids, folded) VALUES (?,?,?,?,?)",
+                 V3_MESSAGE)
+    conn.executemany("INSERT INTO email_recipient_sends(recipient, sent_at) VALUES (?,?)", V3_SENDS)
+    conn.execute("INSERT INTO email_lot_notices(line, product, lot, notified_at) VALUES (?,?,?,?)", V3_NOTICE)
+    conn.execute("INSERT INTO digest_runs(due_at, period_start, period_end, created_at, dedup_key) VALUES (?,?,?,?,?)",
+                 V3_DIGEST)
+    conn.commit()
+    conn.close()
+    return db
+
+
+def test_a_version_3_database_upgrades_keeping_every_row(tmp_path: Path) -> None:
+    """A version-3 database (the senders' tables filled) gets email_batches, empty, and keeps every row of
+    every table, values as written; the new table takes a recorded message."""
+    from monitor.state import outbox
+
+    db = _write_v3(tmp_path / "state")
+    before = sqlite3.connect(str(db))
+    old_tables = _tables(before)
+    dump = {t: sorted(before.execute(f"SELECT * FROM {t}").fetchall(), key=repr) for t in old_tables - {"meta"}}
+    before.close()
+    assert old_tables == TABLES - {"email_batches"}
+    with Database.open(tmp_path / "state") as store:
+        c = store.conn
+        assert _tables(c) == TABLES
+        assert {t: sorted(c.execute(f"SELECT * FROM {t}").fetchall(), key=repr) for t in dump} == dump
+        assert c.execute("SELECT * FROM email_messages").fetchall() == [(1, *V3_MESSAGE)]
+        assert c.execute("SELECT count(*) FROM email_batches").fetchone() == (0,)
+        with store.write() as conn:
+            bid = outbox.record_batch(conn, message_id="<m@x.example>", planned_at=1.0,
+                                      recipients=("qa@brackenfield.example",), alert_ids=[1], folded=False)
+        with store.read() as conn:
+            (open_batch,) = outbox.unfinished_batches(conn)
+    assert (open_batch.id, open_batch.alert_ids, open_batch.recipients) == (bid, (1,), ("qa@brackenfield.example",))
+    assert _version(db) == "4"
 
 
 def test_a_new_database_is_built_at_the_current_version(tmp_path: Path) -> None:
@@ -290,7 +347,7 @@ def test_an_upgrade_is_whole_or_not_at_all(tmp_path: Path, monkeypatch: pytest.M
     monkeypatch.undo()
     with Database.open(tmp_path / "state"):
         pass
-    assert _version(db) == "3"
+    assert _version(db) == "4"
 
 
 def test_the_daemon_refuses_a_newer_database_and_says_why(v2_folder: Path, tmp_path: Path) -> None:
