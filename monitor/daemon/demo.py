@@ -52,7 +52,7 @@ def find_inputs(start: Path | None = None) -> tuple[Path, Path, Path | None]:
 
 
 def free_loopback_port() -> int:
-    """A free TCP port on 127.0.0.1 (bind to port 0, read it, close; RELIABILITY.md, aiosmtpd)."""
+    """A free TCP port on 127.0.0.1 (bind to port 0, read it, close: aiosmtpd's Controller needs a number)."""
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
         s.bind(("127.0.0.1", 0))
         return int(s.getsockname()[1])

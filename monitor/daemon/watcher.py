@@ -277,7 +277,7 @@ class _HintHandler(FileSystemEventHandler):
                 self._on_hint(Path(os.fsdecode(event.dest_path)), True)
             elif kind in ("created", "modified", "closed"):
                 self._on_hint(Path(os.fsdecode(event.src_path)), False)
-        except Exception:  # RELIABILITY: an exception in a handler kills the observer thread
+        except Exception:  # an exception in a handler kills the observer thread
             log.exception("event handler failed on %r; the next rescan will catch the file", event)
 
 

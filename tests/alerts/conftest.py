@@ -126,7 +126,7 @@ def states(db_path: Path) -> Callable[[], dict[tuple[str, str], str]]:
 
 
 def free_port() -> int:
-    """A free TCP port on 127.0.0.1 (aiosmtpd's Controller cannot take port 0; see RELIABILITY.md)."""
+    """A free TCP port on 127.0.0.1 (aiosmtpd's Controller cannot take port 0: bind, read the port, close)."""
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
         s.bind(("127.0.0.1", 0))
         return s.getsockname()[1]
