@@ -66,14 +66,8 @@ class _Client(smtplib.SMTP):
         return sock
 
 
-class _TlsClient(smtplib.SMTP_SSL):
-    early_sock: Any = None
-    _host: str
-
-    def _get_socket(self, host: str, port: int, timeout: float) -> socket.socket:
-        sock = super()._get_socket(host, port, timeout)  # type: ignore[misc]
-        self.early_sock = sock
-        return sock
+class _TlsClient(_Client, smtplib.SMTP_SSL):
+    """The same over implicit TLS: ``SMTP_SSL._get_socket`` wraps the socket ``_Client`` keeps hold of."""
 
 
 class Deadline:

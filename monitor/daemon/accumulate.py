@@ -1,7 +1,7 @@
 """Adds a read export to the lots in the state store and judges the lots that close, on an open transaction.
 
 Called by the intake inside its write transaction: values are appended per (line, product, lot) in arrival
-order, lots are opened, reopened and closed by the policy in ``monitor.daemon.lots``, and each closed lot is
+order, lots are opened, reopened and closed by the policy in ``monitor.lotmodel``, and each closed lot is
 judged (``monitor.daemon.judge``) with its verdict, audit record and alert written on the same connection.
 Per-row Python objects stay bounded by one window: rows are grouped from the frame's arrays and stored in
 windows of ``CHUNK_ROWS``; a lot is read back in chunks (or taken from ``judge.RecentValues`` when just stored).
@@ -21,7 +21,8 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from monitor.daemon import judge, lots, rejudge
+from monitor import lotmodel as lots
+from monitor.daemon import judge, rejudge
 from monitor.ingest.profile import FeedProfile
 from monitor.ingest.reader import Export
 from monitor.lot import LotKey, Verdict

@@ -19,7 +19,6 @@ from monitor.state.files import TakenFile
 
 EVENT = "file-changed-after-take"
 WATCH_SECONDS = 15 * 60.0          # how long after taking a file its archived copy is looked at again
-CHECK_EVERY_SECONDS = 5.0          # how often, at most
 MAX_READ_BYTES = 256 * 1024 * 1024  # read at most this much of a changed file (prefix hash, new lines)
 _CHUNK = 1024 * 1024
 

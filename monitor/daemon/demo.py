@@ -25,6 +25,7 @@ from typing import Any, TextIO
 
 from monitor.daemon.intake import FileOutcome
 from monitor.daemon.service import Daemon
+from monitor.keys import PROFILE, path_keys
 from monitor.lot import Verdict
 from monitor.polling import wait_until
 from monitor.resources import demo_feeds_dir, demo_rules_dir, require_dir, sample_config_path
@@ -34,7 +35,6 @@ SETTLE_SECONDS = 0.5
 START_SECONDS = 60.0   # a first start after install compiles and imports numpy, scipy, pandas, matplotlib
 DISCLAIMER = ("The tool screens; net-quantity compliance is decided under local weights-and-measures law by "
               "the competent authority.")
-PATH_KEYS = ("path", "file", "folder", "dir", "template", "templates")
 
 
 # --------------------------------------------------------------------------------------------- finding inputs
@@ -74,6 +74,10 @@ def toml_value(v: Any) -> str:
     raise ValueError(f"cannot write {v!r} as TOML")
 
 
+# the profile keys declared as paths (monitor.keys): made absolute when the profiles move to the temp tree
+PROFILE_PATH_KEYS = frozenset(k.name for section, k in path_keys() if section is PROFILE)
+
+
 def profile_tables(repo_config: Path | None) -> dict[str, dict[str, Any]]:
     """The `[profiles.*]` tables of the repo config, path-like values made absolute for the temp tree."""
     if repo_config is None:
@@ -83,7 +87,7 @@ def profile_tables(repo_config: Path | None) -> dict[str, dict[str, Any]]:
     for name, sub in (table.get("profiles") or {}).items():
         fixed = dict(sub)
         for k, v in sub.items():
-            if isinstance(v, str) and any(k.endswith(s) for s in PATH_KEYS) and not Path(v).is_absolute():
+            if isinstance(v, str) and k in PROFILE_PATH_KEYS and not Path(v).is_absolute():
                 fixed[k] = str((repo_config.parent / v).resolve())
         out[name] = fixed
     return out

@@ -68,7 +68,6 @@ MAX_UNRECORDED_MOVES = 64
 MAX_ATTEMPTS = 3  # start-ups that may find a file still 'processing' before it is quarantined
 Clock = Callable[[], datetime]
 ChangedAlert = Callable[[ChangedFile, str], Alert]   # (change, ISO time) -> the alert stored with its record
-MAX_UNCLAIMED_CHANGES = 1000
 
 
 @dataclass(frozen=True)
@@ -157,8 +156,6 @@ class Intake:
         # files changed after they were taken (see monitor.daemon.aftertake)
         self.changed_alert: ChangedAlert | None = None   # set by the service: the alert stored with each record
         self._seen_after: dict[int, tuple[int, int]] = {}  # archived files looked at: (size, mtime_ns) seen
-        self._changes: list[ChangedFile] = []              # found by the periodic check, not yet handed out
-        self._last_check: datetime | None = None
 
     # -- reloads -------------------------------------------------------------------------------
     def set_rules(self, rules: Sequence[Rule]) -> None:
@@ -510,7 +507,6 @@ class Intake:
                     self._db_failed(exc, f"recording {len(self._moved)} archive move(s)")
                     return
                 self._db_worked()
-            self._periodic_check()
 
     # -- periodic and start-up work ------------------------------------------------------------
     def close_idle(self, now: datetime | None = None, *, idle_seconds_override: float | None = None) -> list[Verdict]:
@@ -535,50 +531,23 @@ class Intake:
                 self._db_failed(exc, "closing idle lots")
                 return []
             self._db_worked()
-            self._periodic_check(moment)
             return closed
 
     def check_taken(self, now: datetime | None = None) -> list[ChangedFile]:
         """Look again at every file taken in the last ``aftertake.WATCH_SECONDS`` (from the files table, so a
         restart goes on checking): an archived copy whose size or mtime differ from what was read is compared
         with the taken bytes, and a real change is recorded once (audit ``file-changed-after-take``, with the
-        alert ``changed_alert`` makes, in one transaction) and logged. Returns the changes not handed out yet
-        (those found by the periodic check that ``flush`` and ``close_idle`` run, too), each once."""
+        alert ``changed_alert`` makes, in one transaction) and logged. Returns the changes found, each once.
+        The service calls it at each supervision tick."""
         with self._lock:
             moment = now or self.clock()
             try:
-                found = self._check_taken(moment)
+                return self._check_taken(moment)
             except DB_FAULTS as exc:   # nothing recorded: found again at the next check
                 self._db_failed(exc, "reading the files taken lately")
-                found = []
-            out, self._changes = self._changes + found, []
-            return out
-
-    def _periodic_check(self, now: datetime | None = None) -> None:
-        """Run the after-take check at most every ``aftertake.CHECK_EVERY_SECONDS`` (driven from ``flush`` and
-        ``close_idle``, which the run loop calls anyway)."""
-        moment = now or self.clock()
-        last = self._last_check
-        if last is not None and (moment - last).total_seconds() < aftertake.CHECK_EVERY_SECONDS:
-            return
-        where = "checking files taken for later changes"
-        if not self._faults.ready(where):
-            return
-        try:
-            found = self._check_taken(moment)
-        except DB_FAULTS as exc:
-            self._last_check = moment
-            self._db_failed(exc, "reading the files taken lately")
-            return
-        except Exception as exc:  # a bug of ours must not stop flush / close_idle: said once per backoff step
-            self._last_check = moment
-            self._faults.failed(where, exc, "the after-take check", traceback=True)
-            return
-        self._faults.worked(where)
-        self._changes = (self._changes + found)[-MAX_UNCLAIMED_CHANGES:]
+                return []
 
     def _check_taken(self, moment: datetime) -> list[ChangedFile]:
-        self._last_check = moment
         if not self._faults.ready(self._db_where):
             return []
         since = utc_iso(moment - timedelta(seconds=aftertake.WATCH_SECONDS))

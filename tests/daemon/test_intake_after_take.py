@@ -76,17 +76,3 @@ def test_a_rewritten_file_says_its_first_bytes_changed(intake_env, clock) -> Non
     clock.advance(5)
     (change,) = intake.check_taken()
     assert not change.first_bytes_unchanged and not change.appended and change.bytes_added == 0
-
-
-def test_the_periodic_check_runs_from_flush(intake_env, clock) -> None:
-    """flush (called by the run loop when idle) runs the check too; check_taken then hands the change out."""
-    _cfg, store, intake, drop = intake_env
-    archived = _take(intake, drop)
-    with open(archived, "a", encoding="utf-8") as fh:
-        fh.write(MORE)
-    clock.advance(10)
-    intake.flush()
-    with store.read() as conn:
-        assert len(audit.records(conn, "file-changed-after-take")) == 1
-    (change,) = intake.check_taken()
-    assert change.archived_path == str(archived)

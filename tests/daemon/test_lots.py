@@ -5,8 +5,8 @@ from __future__ import annotations
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from monitor.daemon.lots import END_MARKER, NEXT_LOT, Closure, Marker, Segment, find_runs, idle_lots, plan_file
 from monitor.lot import LotKey
+from monitor.lotmodel import END_MARKER, NEXT_LOT, Closure, Marker, Segment, find_runs, idle_lots, plan_file
 
 A = LotKey("L1", "OAT-500", "OAT-24A101")
 B = LotKey("L1", "OAT-500", "OAT-24A102")
@@ -103,7 +103,7 @@ def test_runs_from_codes_match_groupby(keys: list[LotKey]) -> None:
 
     import numpy as np
 
-    from monitor.daemon.lots import runs_of_codes
+    from monitor.lotmodel import runs_of_codes
 
     distinct = list(dict.fromkeys(keys))
     codes = np.array([distinct.index(k) for k in keys], dtype=np.int64)
