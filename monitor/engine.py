@@ -49,6 +49,7 @@ from typing import Any
 
 import numpy as np
 
+from monitor.giveaway import giveaway_of
 from monitor.lot import (
     HeadSummary,
     LotData,
@@ -420,8 +421,13 @@ def _verdict(lot: LotData, rule: Rule, i: int, c: _Columns, values: np.ndarray |
     if n >= 2 and not math.isnan(mean) and gate != _UNIT:
         spread = rule.known_sd if rule.known_sd is not None else sd
         effect = _opt((mean - rule.target) / spread) if spread and spread > 0 else None
+    given = None
+    if gate != _UNIT and n > 0 and math.isfinite(mean):
+        given = giveaway_of(mean, n, nominal=rule.nominal, target=rule.target, cost_per_unit=rule.cost_per_unit,
+                            currency=rule.currency)
     return Verdict(key=lot.key, rule=rule.name, rule_version=rule.version, n=n, mean=_opt(mean),
-                   sd=_opt(sd) if n >= 2 else None, target=rule.target, unit=unit, alternative=rule.alternative,
+                   sd=_opt(sd) if n >= 2 else None, giveaway=given, target=rule.target, unit=unit,
+                   alternative=rule.alternative,
                    alpha=rule.alpha, effect_size=effect, normality=normality, power=pw, n_for_power=nfp,
                    verdict=verdict, reason=reason, excluded=c.excluded[i], heads=head_rows, files=lot.files,
                    average_quantity=aq, unit_assumed=lot.unit_assumed, excluded_by=excluded_by,

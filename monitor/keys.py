@@ -184,6 +184,9 @@ CONFIG = Section("config", "Daemon config (`config/lotwarden.toml`), top level",
     Key("alerts", "table", EMPTY, None, "[alerts]: alert channels and e-mail pacing"),
     Key("profiles", "table", EMPTY, None, "[profiles.<name>] tables: how one weigher's exports are read; first "
                                        "matching profile wins"),
+    Key("timezone", "string", Derived("<alerts.digest.timezone>, else UTC"), _zone,
+        'IANA time zone of the plant, e.g. "Europe/Berlin": a date given to `lots`, `report` (--since / '
+        "--until) means that whole day there; times are shown there"),
 ))
 WATCH = Section("watch", "`[watch]`", (
     Key("folder", "string", REQUIRED, None, "drop folder the checkweigher writes its exports into (required)",
@@ -294,8 +297,8 @@ ALERTS_EMAIL_ROUTE = Section("alerts.email.route", "`[[alerts.email.route]]` (e-
     Key("lines", "strings", ("*",), _GLOBS, "line names this route selects (glob patterns allowed)"),
     Key("products", "strings", ("*",), _GLOBS, "product codes this route selects (glob patterns allowed)"),
     Key("kinds", "strings", ("*",), _GLOBS,
-        "alert kinds this route selects; a verdict-changed alert is also selected by the kind of the verdict it "
-        "replaces (hold, review)"),
+        "alert kinds this route selects; a verdict-changed, disposition or reminder alert is also selected by the "
+        "kind of the verdict it is about (hold, review), so it reaches the people who got the hold"),
     Key("recipients", "strings", REQUIRED, _addresses, "addresses that receive the selected alerts (required)"),
     Key("replace_default", "bool", False, None,
         "true: the selected alerts go to this route's recipients instead of the default `recipients`; false: in "
@@ -357,6 +360,10 @@ RULE = Section("rule", "Rule files (`rules/*.toml`)", (
         "2.5 % (trading standards guidance on SI 2006/659); Germany's Fertigpackungsverordnung §9(3) allows "
         "2 % (0.02)"),
     Key("description", "string", "", Text(non_empty=False), "free text for people"),
+    Key("cost_per_unit", "number", None, Range(0.0),
+        "cost of one `unit` of product (e.g. 0.0042 per g), for the giveaway's cost (finite number >= 0)"),
+    Key("currency", "string", None, Text(solid=True, plain=True, strip=True),
+        'currency of `cost_per_unit`, shown beside costs (text, e.g. "EUR"); needs cost_per_unit'),
     Key("normality", "table", EMPTY, None, "[normality]: the normality gate (keys below)"),
 ))
 NORMALITY = Section("normality", "Rule files, `[normality]` table", (

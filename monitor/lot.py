@@ -169,6 +169,7 @@ class Verdict:
     excluded_by: Mapping[str, int] = field(default_factory=lambda: excluded_counts(None, 0))
     wilcoxon: WilcoxonInfo | None = None   # set when test == "wilcoxon"
     runs: int | None = None        # separate runs of rows that made the lot (monitor.lotmodel); None: not counted
+    giveaway: Any = None           # monitor.giveaway.Giveaway when the mean is known in the rule's unit
 
     def to_json(self) -> dict[str, Any]:
         """The documented JSON object (``check --format json``, alert log, templates)."""
@@ -208,6 +209,7 @@ class Verdict:
             "heads": [h.to_json() for h in self.heads],
             "average_quantity": None if self.average_quantity is None else self.average_quantity.to_json(),
             "runs": self.runs,
+            "giveaway": None if self.giveaway is None else self.giveaway.to_json(),
         }
 
     def with_runs(self, runs: int | None) -> Verdict:

@@ -17,7 +17,7 @@ from typing import Any
 
 from monitor.errors import RuleError
 from monitor.keys import NORMALITY, RULE, read
-from monitor.tomlfile import read_toml
+from monitor.tomlfile import read_toml_text
 
 ALTERNATIVES = ("two-sided", "less", "greater")
 ON_FAIL = ("review", "wilcoxon", "ignore")
@@ -60,9 +60,27 @@ class Rule:
     sampling_plan: str = RULE.default("sampling_plan", str)
     t1_share: float = RULE.default("t1_share", float)
     description: str = RULE.default("description", str)
+    cost_per_unit: float | None = None
+    currency: str | None = None
     normality: NormalityRule = field(default_factory=NormalityRule)
     source: str | None = None
     content_hash: str = ""
+    text: str = field(default="", compare=False, repr=False)   # the rule file's full text as read
+
+    def values(self) -> dict[str, Any]:
+        """The rule's validated values as plain JSON-able data (key -> value; ``normality`` a nested table);
+        what a ``rule-changed`` alert compares. Source, hash and text are not values."""
+        out: dict[str, Any] = {}
+        for f in dataclasses.fields(self):
+            if f.name in ("source", "content_hash", "text"):
+                continue
+            v = getattr(self, f.name)
+            if f.name == "normality":
+                v = {k: w for k, w in dataclasses.asdict(v).items() if k != "enabled"}
+            elif isinstance(v, tuple):
+                v = list(v)
+            out[f.name] = v
+        return out
 
     def matches(self, product: str) -> bool:
         """True if this rule judges ``product`` (exact code or glob; "*" matches any, also empty)."""
@@ -94,8 +112,8 @@ class Rule:
 
     @classmethod
     def from_file(cls, path: str | Path) -> Rule:
-        table, digest = read_toml(path, what="rule file", error=RuleError)
-        return _parse_rule(table, str(Path(path)), digest)
+        table, digest, text = read_toml_text(path, what="rule file", error=RuleError)
+        return dataclasses.replace(_parse_rule(table, str(Path(path)), digest), text=text)
 
 
 def load_rules(folder: str | Path) -> list[Rule]:
@@ -168,4 +186,7 @@ def _parse_rule(table: Mapping[str, Any], source: str, content_hash: str) -> Rul
     values = read(RULE, table, source=source, error=RuleError)
     normality = read(NORMALITY, values.pop("normality"), source=source, error=RuleError)
     _quantity_keys(table, values, source)
+    if "currency" in table and "cost_per_unit" not in table:
+        raise _fail(source, "currency", "currency is set but the rule has no cost_per_unit",
+                    hint="set cost_per_unit (the cost of one rule unit of product) or remove currency")
     return Rule(normality=NormalityRule(**normality), source=source, content_hash=content_hash, **values)

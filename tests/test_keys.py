@@ -21,7 +21,7 @@ CLASSES: dict[type, tuple[K.Section, set[str]]] = {
     FeedProfile: (K.PROFILE, {"name", "source"}), S.AlertSettings: (K.ALERTS, set()),
     S.LogSettings: (K.ALERTS_LOG, set()), S.EmailSettings: (K.ALERTS_EMAIL, {"routes"}),
     S.Route: (K.ALERTS_EMAIL_ROUTE, set()), S.CommandSettings: (K.ALERTS_COMMAND, set()),
-    S.DigestSettings: (K.ALERTS_DIGEST, set()), Rule: (K.RULE, {"source", "content_hash"}),
+    S.DigestSettings: (K.ALERTS_DIGEST, set()), Rule: (K.RULE, {"source", "content_hash", "text"}),
     NormalityRule: (K.NORMALITY, {"enabled"}),
 }
 

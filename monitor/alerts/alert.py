@@ -18,6 +18,9 @@ ALERT_KINDS = (
     "file-changed-after-take",  # an archived export grew or changed after it was taken: new rows not judged
     "fault-persisting",  # a fault (full disk, unusable archive, ...) has lasted minutes; files wait, none lost
     "fault-cleared",     # ... and has gone
+    "disposition",       # a person released, reworked or scrapped a held lot (told to those who got the hold)
+    "reminder",          # a hold / review still has no disposition: told again every reminder_minutes
+    "rule-changed",      # a reloaded rule's values changed (old -> new per key)
     "daemon-started",
     "daemon-stopped",
     "digest",            # the daily summary

@@ -26,10 +26,12 @@ TemplatesFn = Callable[[], tuple[TemplateSet, TemplateSet]]
 
 
 def previous_verdict(alert: Alert) -> str | None:
-    """The replaced verdict ("hold", "review") of a verdict-changed alert; None for other kinds."""
-    if alert.kind != "verdict-changed":
+    """The verdict ("hold", "review") an alert is about besides its own kind: the replaced one of a
+    verdict-changed alert, the disposed / still open one of a disposition or reminder; None for other kinds.
+    A route selecting that verdict's kind also selects the alert, so it reaches the people who got the hold."""
+    if alert.kind not in ("verdict-changed", "disposition", "reminder"):
         return None
-    prev = alert.data.get("previous")
+    prev = alert.data.get("previous" if alert.kind == "verdict-changed" else "verdict")
     verdict = prev.get("verdict") if isinstance(prev, dict) else None
     return verdict if isinstance(verdict, str) and verdict else None
 
@@ -57,7 +59,8 @@ class EmailDelivery:
         self.sent_messages = 0
 
     def recipients_for(self, alert: Alert) -> tuple[str, ...]:
-        """The alert's recipients (a verdict-changed alert also by the kind of the verdict it replaces)."""
+        """The alert's recipients (a verdict-changed, disposition or reminder alert also by the kind of the
+        verdict it is about)."""
         return self.email.recipients_for(alert.kind, alert.line, alert.product, previous_verdict(alert))
 
     def abort(self) -> None:

@@ -45,6 +45,34 @@ def verdict_changed(*, line: str, product: str, lot: str, previous_verdict_id: i
                  created_at=at, data=data, line=line, product=product, lot=lot)
 
 
+def disposition(*, line: str, product: str, lot: str, disposition_id: int, action: str, by: str, note: str,
+                at: str, verdict: Mapping[str, Any]) -> Alert:
+    """A person decided about a held lot (``action``: release / rework / scrap). ``verdict``: the disposed
+    hold / review (verdict_id, verdict, decided_at, rule, rule_version, n, mean, target, unit, p_value, reason);
+    routed like that verdict, so it reaches the people who got the hold."""
+    return Alert(kind="disposition", dedup_key=f"disposition|{disposition_id}", created_at=at,
+                 line=line, product=product, lot=lot,
+                 data={"disposition": {"id": disposition_id, "action": action, "by": by, "note": note, "at": at},
+                       "verdict": dict(verdict)})
+
+
+def reminder(*, line: str, product: str, lot: str, verdict_id: int, number: int, verdict: Mapping[str, Any],
+             open_minutes: float, at: str) -> Alert:
+    """The ``number``-th reminder of a hold / review with no disposition, open ``open_minutes`` since it was
+    decided. ``verdict`` as for ``disposition``; routed like that verdict."""
+    return Alert(kind="reminder", dedup_key=f"reminder|{verdict_id}|{number}", created_at=at,
+                 line=line, product=product, lot=lot,
+                 data={"verdict": dict(verdict), "number": number, "open_minutes": round(open_minutes, 1)})
+
+
+def rule_changed(*, rule: str, file: str, old_version: str, new_version: str,
+                 changes: Sequence[Mapping[str, Any]], at: str) -> Alert:
+    """A reloaded rule's values changed; ``changes``: one {key, old, new} per changed key, in key order."""
+    return Alert(kind="rule-changed", dedup_key=f"rule-changed|{rule}|{old_version}|{new_version}", created_at=at,
+                 data={"rule": rule, "file": file, "old_version": old_version, "new_version": new_version,
+                       "changes": [dict(c) for c in changes]})
+
+
 # --- files -------------------------------------------------------------------------------------------------
 def file_rejected(*, file_id: int, path: str, sha256: str, reason: str, at: str,
                   quarantined_to: str | None = None, line: int | None = None, key: str | None = None) -> Alert:

@@ -133,6 +133,23 @@ def sample_context(kind: str = "hold") -> dict[str, Any]:
                     previous={"verdict": "hold", "decided_at": "2026-12-01T05:00:00+00:00",
                               "reason": "mean below target", "rule": "oat-500", "rule_version": "0000", "n": 8,
                               "mean": 497.1, "p_value": 1e-5})
+    if kind in ("disposition", "reminder", "rule-changed"):
+        told = {"verdict_id": 7, "verdict": "hold", "decided_at": "2026-12-01T05:00:00+00:00", "rule": "oat-500",
+                "rule_version": "0000", "n": 10, "mean": 497.4, "target": 500.0, "unit": "g", "p_value": 1e-6,
+                "reason": "mean below target"}
+        samples: dict[str, dict[str, Any]] = {
+            "disposition": {"disposition": {"id": 1, "action": "rework", "by": "I. Marsh",
+                                            "note": "re-checked 20 packs", "at": "2026-12-01T07:00:00+00:00"},
+                            "verdict": told},
+            "reminder": {"verdict": told, "number": 1, "open_minutes": 240.0},
+            "rule-changed": {"rule": "oat-500", "file": "rules/oat-500.toml", "old_version": "0000",
+                             "new_version": "1111", "changes": [{"key": "alpha", "old": 0.05, "new": 0.01}]},
+        }
+        extra = samples[kind]
+        one = {"kind": kind, "dedup_key": f"{kind}|x", "created_at": "2026-12-01T07:00:00+00:00",
+               "line": "" if kind == "rule-changed" else "L2", "product": "" if kind == "rule-changed" else "OAT-500",
+               "lot": "" if kind == "rule-changed" else "A1001", "data": extra, "chart_cid": None}
+        return message_context([one], folded=False, generated_at="2026-12-01T07:00:00+00:00")
     item: dict[str, Any] = {"kind": "verdict-changed" if kind == "verdict-changed" else "hold",
             "dedup_key": "hold|L2|OAT-500|A1001|0000", "created_at": "2026-12-01T06:00:00+00:00",
             "line": "L2", "product": "OAT-500", "lot": "A1001", "data": data, "chart_cid": "chart0"}

@@ -91,6 +91,7 @@ class Config:
     state: StateSettings
     alerts: AlertSettings
     profiles: tuple[FeedProfile, ...] = ()
+    timezone: str = "UTC"
 
     @property
     def version(self) -> str:
@@ -120,8 +121,9 @@ def parse_config(table: Mapping[str, Any], *, source: Path, content_hash: str = 
                               hint="use a folder of its own so processed files are not taken again")
     alerts = parse_alerts(top["alerts"], source=src, base_dir=base)
     profiles = parse_profiles(top["profiles"], source=src)
+    zone = top["timezone"] or (alerts.digest.timezone if alerts.digest is not None else "UTC")
     return Config(source=Path(source), content_hash=content_hash, rules_dir=top["rules_dir"], watch=watch,
-                  state=state, alerts=alerts, profiles=profiles)
+                  state=state, alerts=alerts, profiles=profiles, timezone=zone)
 
 
 def parse_profiles(table: Mapping[str, Any], *, source: str) -> tuple[FeedProfile, ...]:

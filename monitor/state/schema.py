@@ -14,6 +14,8 @@ Versions:
      are part of the schema, created at start-up instead of by the first sender.
   4  email_batches: each e-mail message recorded (Message-ID, alerts, recipients) before it is handed to
      the server, so a message cut short by a crash is repeated as it was, under the same Message-ID.
+  5  dispositions (what people decided about a held lot; append-only) and rule_texts (every rule version's
+     full text, kept when first seen), for the lot record.
 
 The DDL of each migration is frozen as it was at its version: a later change is a new migration, never an
 edit of an old one.
@@ -29,7 +31,7 @@ from pathlib import Path
 from monitor.errors import LotwardenError
 from monitor.state.database import get_meta, set_meta, table_columns, table_names
 
-CURRENT_VERSION = 4
+CURRENT_VERSION = 5
 VERSION_KEY = "schema_version"
 
 # Version 2's tables, as a database of version 2 has them (a version-1 database lacks some; each is
@@ -228,6 +230,34 @@ CREATE INDEX IF NOT EXISTS email_batches_state ON email_batches(state, id);
 """
 
 
+# Version 5: the lot record. A disposition row is never changed or deleted: a later one for the same lot
+# supersedes it for display. A rule version's text is stored once, the first time a daemon loads it.
+TABLES_V5 = """
+CREATE TABLE IF NOT EXISTS dispositions (
+    id          INTEGER PRIMARY KEY,
+    at          TEXT NOT NULL,          -- ISO 8601 UTC
+    line        TEXT NOT NULL,
+    product     TEXT NOT NULL,
+    lot         TEXT NOT NULL,
+    verdict_id  INTEGER NOT NULL REFERENCES verdicts(id),  -- the hold / review it disposes of
+    action      TEXT NOT NULL CHECK (action IN ('release', 'rework', 'scrap')),
+    by_name     TEXT NOT NULL,
+    note        TEXT NOT NULL
+);
+CREATE INDEX IF NOT EXISTS dispositions_lot ON dispositions(line, product, lot, id);
+CREATE TABLE IF NOT EXISTS rule_texts (
+    rule_hash     TEXT PRIMARY KEY,     -- sha256 of the rule file's bytes (Rule.content_hash)
+    rule          TEXT NOT NULL,        -- the rule's name
+    version       TEXT NOT NULL,        -- Rule.version (the hash's first 12 hex digits)
+    source        TEXT NOT NULL,        -- the file it was read from
+    text          TEXT NOT NULL,        -- the file's full text as it was
+    values_json   TEXT NOT NULL,        -- the rule's values after validation (JSON object)
+    first_seen_at TEXT NOT NULL         -- ISO 8601 UTC
+);
+CREATE INDEX IF NOT EXISTS rule_texts_name ON rule_texts(rule, first_seen_at);
+"""
+
+
 class SchemaVersionError(LotwardenError):
     """The state database's schema version is one this code cannot use (newer than it, or not a number)."""
 
@@ -271,12 +301,17 @@ def _to_v4(conn: sqlite3.Connection) -> None:
     _run_script(conn, TABLES_V4)
 
 
+def _to_v5(conn: sqlite3.Connection) -> None:
+    _run_script(conn, TABLES_V5)
+
+
 # Version 1 has no step: a new database (nothing in it) is treated as "before version 2" and built by the
 # steps from 2 on, which create every table they need if missing.
 MIGRATIONS: tuple[Migration, ...] = (
     Migration(2, "add lot_values.excluded, lot_summaries.problem, verdicts.lot_rows", _to_v2),
     Migration(3, "create the senders' tables (e-mail bookkeeping, digest_runs)", _to_v3),
     Migration(4, "create email_batches (messages recorded before they are sent)", _to_v4),
+    Migration(5, "create dispositions and rule_texts (the lot record)", _to_v5),
 )
 assert [m.version for m in MIGRATIONS] == list(range(2, CURRENT_VERSION + 1))
 
