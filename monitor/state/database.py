@@ -219,11 +219,13 @@ class Database:
         with self.lock, _read_tx(self.conn) as conn:
             yield conn
 
-    def close(self) -> None:
-        """Checkpoint the WAL and close the connection."""
+    def close(self, *, checkpoint: bool = True) -> None:
+        """Checkpoint the WAL (unless ``checkpoint`` is False: a tool beside a running daemon leaves that
+        to the daemon, so it never waits on the daemon's readers) and close the connection."""
         with self.lock:
             try:
-                _checkpoint(self.conn)
+                if checkpoint:
+                    _checkpoint(self.conn)
             finally:
                 self.conn.close()
 
