@@ -257,7 +257,9 @@ ALERTS = Section("alerts", "`[alerts]`", (
         "e-mail: at most this many messages per recipient per rolling hour; the rest are folded into one "
         "summary when a slot frees (integer >= 1)"),
     Key("reminder_minutes", "number", 240.0, NON_NEGATIVE,
-        "e-mail: a lot already notified as held is notified again only after this long"),
+        "minutes: a hold or review with no disposition yet is told again (a `reminder` alert) every this long "
+        "until `lotwarden dispose` records one (0: no reminders); e-mail: a repeat hold notice of a lot told "
+        "within this long is not sent again"),
     Key("drain_seconds", "number", 5.0, POSITIVE, "how often the outbox is drained (seconds, > 0)"),
     Key("log", "table", None, None, "[alerts.log]: the JSON-lines alert log"),
     Key("email", "table", None, None, "[alerts.email]: SMTP delivery"),
