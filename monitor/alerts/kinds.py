@@ -67,8 +67,9 @@ def reminder(*, line: str, product: str, lot: str, verdict_id: int, number: int,
 
 def rule_changed(*, rule: str, file: str, old_version: str, new_version: str,
                  changes: Sequence[Mapping[str, Any]], at: str) -> Alert:
-    """A reloaded rule's values changed; ``changes``: one {key, old, new} per changed key, in key order."""
-    return Alert(kind="rule-changed", dedup_key=f"rule-changed|{rule}|{old_version}|{new_version}", created_at=at,
+    """A reloaded rule's values changed; ``changes``: one {key, old, new} per changed key, in key order. The
+    same change made again later (back, then forth again) is told again: ``at`` is part of the key."""
+    return Alert(kind="rule-changed", dedup_key=f"rule-changed|{rule}|{old_version}|{new_version}|{at}", created_at=at,
                  data={"rule": rule, "file": file, "old_version": old_version, "new_version": new_version,
                        "changes": [dict(c) for c in changes]})
 

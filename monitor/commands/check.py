@@ -322,9 +322,40 @@ def _file_cell(v: Verdict) -> str:
     return Path(v.files[0]).name + (f" +{more} more" if more else "")
 
 
+def _signed(x: float, digits: int = 3) -> str:
+    """``x`` as ``_fmt`` prints it with its sign always shown ("+2.04", "-0.6", "0")."""
+    text = _fmt(x, digits)
+    return text if text.startswith("-") or text == "0" else "+" + text
+
+
+def _giveaway_cell(v: Verdict) -> str:
+    """The giveaway per pack with its unit ("+2.04 g"), "-" when unknown."""
+    g = v.giveaway
+    if g is None:
+        return "-"
+    return _signed(g.per_pack) + (f" {v.unit}" if v.unit else "")
+
+
+def giveaway_line(v: Verdict) -> str | None:
+    """The lot's giveaway in words: per pack against the nominal quantity (or the target), in all over its
+    packs, and its cost when the rule sets a cost per unit; "under-filled" when below. None when unknown."""
+    g = v.giveaway
+    if g is None:
+        return None
+    unit = f" {v.unit}" if v.unit else ""
+    nominal = v.average_quantity.nominal if v.average_quantity is not None else None
+    ref = f"nominal {_fmt(nominal)}{unit}" if nominal is not None else f"target {_fmt(v.target)}{unit}"
+    side = "below" if g.per_pack < 0 else "above"
+    text = (f"giveaway {_signed(g.per_pack)}{unit} per pack {side} {ref}, {_signed(g.total)}{unit} over "
+            f"{plural(v.n, 'pack')}")
+    if g.cost is not None:
+        text += f" (cost {_signed(g.cost, 4)}{' ' + g.currency if g.currency else ''})"
+    return ("under-filled: " + text) if g.per_pack < 0 else text
+
+
 def render_table(verdicts: list[Verdict]) -> str:
-    head = ["file", "lot", "product", "n", "mean", "sd", "target", "test", "stat", "df", "p vs alpha", "CI",
-            "verdict", "notes"]
+    head = ["file", "lot", "product", "n", "mean", "sd", "target", "giveaway", "test", "stat", "df", "p vs alpha",
+            "CI", "verdict", "notes"]
     rows = []
     for v in verdicts:
         ci = "-"
@@ -333,14 +364,17 @@ def render_table(verdicts: list[Verdict]) -> str:
                  f"{_fmt(v.ci_high) if _finite(v.ci_high) else '+inf'}]"
         target = _fmt(v.target) + (f" {v.unit}" if v.unit and _finite(v.target) else "")
         rows.append([_file_cell(v), v.key.lot or "-", v.key.product or "-", str(v.n), _fmt(v.mean), _fmt(v.sd),
-                     target, v.test or "-", _fmt(v.statistic), _df_text(v.df), p_vs_alpha(v.p_value, v.alpha),
-                     ci, v.verdict.upper(), _notes(v)])
+                     target, _giveaway_cell(v), v.test or "-", _fmt(v.statistic), _df_text(v.df),
+                     p_vs_alpha(v.p_value, v.alpha), ci, v.verdict.upper(), _notes(v)])
     widths = [max(len(h), *(len(r[i]) for r in rows)) if rows else len(h) for i, h in enumerate(head)]
     out = ["  ".join(h.ljust(w) for h, w in zip(head, widths, strict=True)).rstrip(),
            "  ".join("-" * w for w in widths)]
     for r, v in zip(rows, verdicts, strict=True):
         out.append("  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)).rstrip())
         out.append("      " + v.reason)
+        given = giveaway_line(v)
+        if given is not None:
+            out.append("      " + given)
     counts = {k: sum(1 for v in verdicts if v.verdict == k) for k in ("pass", "hold", "review")}
     out.append("")
     out.append(f"{plural(len(verdicts), 'lot')}: {counts['pass']} pass, {counts['hold']} hold, "

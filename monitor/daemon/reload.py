@@ -20,6 +20,7 @@ from monitor.alerts import kinds
 from monitor.alerts.alert import Alert
 from monitor.daemon.components import Components
 from monitor.daemon.config import Config, load_config, load_rule_set
+from monitor.daemon.rulestore import store_rule_texts
 from monitor.errors import LotwardenError
 from monitor.rulebook import Rule
 
@@ -179,10 +180,23 @@ class Reloader:
                 and self.applied.templates != old_fp.templates:
             self._reload_templates(new)
         self.good_since = datetime.now(UTC).isoformat()
+        self._remember_rules(new)
         self.host.audit("config-reloaded", config_version=config.version, rules={r.name: r.version for r in rules})
         log.info("reloaded: config version %s, %d rules (%s)", config.version, len(rules),
                  ", ".join(f"{r.name}@{r.version}" for r in rules))
         self.host.event("reloaded", {"rules": len(rules)})
+
+    def _remember_rules(self, parts: Components) -> None:
+        """Store the texts of the rules now in force; a rule whose values changed is told (rule-changed)."""
+        try:
+            told = store_rule_texts(parts.core.store, parts.rules, parts.config.alerts.channels, utc_now_iso())
+        except Exception:   # the reload itself stands; the texts are stored at the next reload or start
+            log.exception("could not store the rule texts")
+            return
+        for alert in told:
+            log.info("rule %s changed: %s", alert.data["rule"], ", ".join(c["key"] for c in alert.data["changes"]))
+        if told and parts.dispatcher is not None:   # tell now rather than at the next drain tick
+            parts.dispatcher.kick()
 
     def _reload_templates(self, parts: Components) -> None:
         """New operator templates: checked first; a bad set leaves the one in force (config-rejected)."""

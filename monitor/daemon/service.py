@@ -27,7 +27,7 @@ from apscheduler.schedulers.background import BackgroundScheduler
 
 from monitor.alerts import kinds
 from monitor.alerts.alert import Alert
-from monitor.daemon import archive, components
+from monitor.daemon import archive, components, rulestore
 from monitor.daemon.aftertake import ChangedFile
 from monitor.daemon.components import Components, Core
 from monitor.daemon.config import Config, load_config, load_rule_set
@@ -208,6 +208,9 @@ class Daemon:
     def _open(self, config: Config, rules: list[Rule]) -> None:
         """Build the parts (the composition root's functions), recover, say so, scan."""
         self._core = core = components.open_core(config, rules)   # a second daemon on this folder stops here
+        for alert in rulestore.store_rule_texts(core.store, rules, config.alerts.channels, utc_now_iso()):
+            log.warning("rule %s changed while the daemon was down: %s", alert.data.get("rule"),
+                        ", ".join(f"{c['key']} {c['old']!r} -> {c['new']!r}" for c in alert.data.get("changes", [])))
         core.intake.changed_alert = _changed_alert
         for outcome in core.intake.recover():
             log.warning("recovered after an unclean stop: %s", outcome.describe())

@@ -10,6 +10,8 @@ import sqlite3
 from collections.abc import Iterable
 from typing import NamedTuple
 
+from monitor.state.database import get_meta, set_meta
+
 
 class RuleText(NamedTuple):
     """One stored rule version."""
@@ -55,3 +57,19 @@ def latest_of(conn: sqlite3.Connection, rule: str) -> RuleText | None:
 def all_texts(conn: sqlite3.Connection) -> list[RuleText]:
     """Every stored rule version, in the order first seen."""
     return [RuleText(*r) for r in conn.execute(f"SELECT {_COLUMNS} FROM rule_texts ORDER BY first_seen_at, rowid")]
+
+
+def _in_force_key(rule: str) -> str:
+    return f"rule_in_force|{rule}"
+
+
+def in_force(conn: sqlite3.Connection, rule: str) -> RuleText | None:
+    """The version of rule ``rule`` a daemon loaded last (``set_in_force``); else the one stored last."""
+    rule_hash = get_meta(conn, _in_force_key(rule))
+    found = by_hash(conn, rule_hash) if rule_hash is not None else None
+    return found if found is not None else latest_of(conn, rule)
+
+
+def set_in_force(conn: sqlite3.Connection, rule: str, rule_hash: str) -> None:
+    """Note that ``rule_hash`` is the version of ``rule`` now loaded (inside a write transaction)."""
+    set_meta(conn, _in_force_key(rule), rule_hash)
