@@ -51,6 +51,7 @@ import numpy as np
 
 from monitor.giveaway import giveaway_of
 from monitor.lot import (
+    HeadsTest,
     HeadSummary,
     LotData,
     NormalityResult,
@@ -59,6 +60,8 @@ from monitor.lot import (
     excluded_counts,
 )
 from monitor.rulebook import Rule
+from monitor.stats.equivalence import Equivalence, n_to_show, not_shown_reason, tost_t, tost_z
+from monitor.stats.heads import anova_segments, holm_segments, kruskal_wallis
 from monitor.stats.location import t_test_arrays, z_test_arrays
 from monitor.stats.moments import segment_moments
 from monitor.stats.normality import MAX_N as SW_MAX_N
@@ -174,14 +177,14 @@ def evaluate_many(lots: Sequence[LotData], rule: Rule) -> list[Verdict]:
     ctx = _Columns(n=n.tolist(), mean=mean.tolist(), sd=sd.tolist(), excluded=excluded.tolist(),
                    gate=gate.tolist(), sw_w=sw_w.tolist(), sw_p=sw_p.tolist(), power=pw.tolist(),
                    nfp=nfp.tolist(), test=cols, flat=flat.tolist(), mixup=mixup.tolist())
-    heads = _head_breakdown(lots, raw_len, rule)
+    heads = _head_breakdown(lots, raw_len, rule, sw_failed)
     out: list[Verdict] = []
     for i, lot in enumerate(lots):
         # a unit mix-up's values are not in the rule's unit: nothing is computed from them (no screen either)
         usable = lot.values is not None and gate[i] != _UNIT
         values = x[starts[i]:starts[i] + n[i]] if usable else None
         out.append(_verdict(lot, rule, i, ctx, values, bool(parametric[i]), bool(use_wilcoxon[i]),
-                            heads.get(i, ())))
+                            heads.get(i, _NO_HEADS)))
     return out
 
 
@@ -278,11 +281,19 @@ def _power(n: np.ndarray, sd: np.ndarray, rule: Rule, wanted: np.ndarray) -> tup
     return pw, nfp
 
 
-def _head_breakdown(lots: list[LotData], raw_len: np.ndarray, rule: Rule) -> dict[int, tuple[HeadSummary, ...]]:
-    """Per-head summaries for every lot that names its heads, all (lot, head) groups in one segment pass.
+_HeadRows = tuple[tuple[HeadSummary, ...], HeadsTest | None, str | None]
+_NO_HEADS: _HeadRows = ((), None, None)
+
+
+def _head_breakdown(lots: list[LotData], raw_len: np.ndarray, rule: Rule,
+                    sw_failed: np.ndarray) -> dict[int, _HeadRows]:
+    """Per-head summaries and the heads test for every lot that names its heads, in segment passes.
 
     Groups are ordered by lot, then head name; inside a group values keep arrival order, so a lot's
     numbers do not depend on the rest of the batch. Non-finite values are left out of their head too.
+    Each head's own t-test p is Holm-adjusted across the lot's heads that have one (``p_holm``). The
+    heads are compared by one-way ANOVA (all lots at once), or by Kruskal–Wallis for a lot whose
+    normality gate failed (``sw_failed``), one lot at a time.
     """
     idx = [i for i, lot in enumerate(lots) if lot.heads is not None and lot.values is not None and raw_len[i]]
     if not idx:
@@ -294,25 +305,62 @@ def _head_breakdown(lots: list[LotData], raw_len: np.ndarray, rule: Rule) -> dic
     names, vals, owner = names[keep], vals[keep], owner[keep]
     labels, code = np.unique(names, return_inverse=True)
     keys, group = np.unique(owner * labels.shape[0] + code, return_inverse=True)
-    hn, hmean, hvar = segment_moments(vals[np.argsort(group, kind="stable")], np.bincount(group))
+    grouped = vals[np.argsort(group, kind="stable")]
+    hn, hmean, hvar = segment_moments(grouped, np.bincount(group))
     res = t_test_arrays(np.maximum(hn, 2), hmean, hvar, rule.target, rule.alternative, rule.alpha)
     testable = (hn >= 2) & (hvar > 0)
+    group_lot = keys // labels.shape[0]
+    per_lot = np.bincount(group_lot, minlength=len(idx))
+    p_holm = np.full(hn.shape[0], np.nan)
+    p_holm[testable] = holm_segments(res["p_value"][testable], np.bincount(group_lot[testable], minlength=len(idx)))
     sd = np.where(hn >= 2, np.sqrt(np.where(hn >= 2, hvar, 0.0)), np.nan)
     rows = [HeadSummary(head=h, n=c, mean=m, sd=s if c >= 2 else None, offset=m - rule.target,
-                        p_value=p if t else None)
-            for h, c, m, s, p, t in zip(labels[keys % labels.shape[0]].tolist(), hn.tolist(), hmean.tolist(),
-                                        sd.tolist(), res["p_value"].tolist(), testable.tolist(), strict=True)]
-    bounds = np.searchsorted(keys // labels.shape[0], np.arange(len(idx) + 1)).tolist()
-    return {i: tuple(rows[bounds[j]:bounds[j + 1]]) for j, i in enumerate(idx)}
+                        p_value=p if t else None, p_holm=a if t else None)
+            for h, c, m, s, p, a, t in zip(labels[keys % labels.shape[0]].tolist(), hn.tolist(), hmean.tolist(),
+                                           sd.tolist(), res["p_value"].tolist(), p_holm.tolist(),
+                                           testable.tolist(), strict=True)]
+    f, fp, dfb, dfw = (col.tolist() for col in anova_segments(grouped, hn, per_lot))
+    bounds = np.searchsorted(group_lot, np.arange(len(idx) + 1)).tolist()
+    value_bounds = np.r_[0, np.cumsum(hn)].tolist()
+    failed = sw_failed.tolist()
+    out: dict[int, _HeadRows] = {}
+    for j, i in enumerate(idx):
+        a, b = bounds[j], bounds[j + 1]
+        k, total = b - a, value_bounds[b] - value_bounds[a]
+        kruskal = failed[i]
+        test: HeadsTest | None = None
+        why: str | None = None
+        if k == 0:
+            why = "no head has a usable value"
+        elif k == 1:
+            why = f"only 1 head with data ({rows[a].head}): no other head to compare it with"
+        elif total <= k:
+            why = f"too few values to compare the heads: {total} values in {k} heads, one per head"
+        elif kruskal:
+            r = kruskal_wallis(grouped[value_bounds[a]:value_bounds[b]], np.repeat(np.arange(k), hn[a:b]))
+            if math.isnan(r.statistic):
+                why = "all values are equal: Kruskal–Wallis has nothing to rank"
+            else:
+                test = HeadsTest("kruskal", r.statistic, r.p_value, r.df_between, None,
+                                 f"Kruskal–Wallis across {k} heads (ties corrected; chi-square, {k - 1} df), as "
+                                 "Shapiro–Wilk rejected normality")
+        elif math.isnan(f[j]):
+            why = "the values do not vary within any head: the F ratio is undefined"
+        else:
+            test = HeadsTest("anova", f[j], fp[j], dfb[j], dfw[j],
+                             f"one-way ANOVA across {k} heads, F({dfb[j]}, {dfw[j]})")
+        out[i] = (tuple(rows[a:b]), test, why)
+    return out
 
 
 def _standout_head(heads: tuple[HeadSummary, ...], alpha: float) -> HeadSummary | None:
-    """The head furthest off target, if it is off on its own test and twice as far off as any other."""
+    """The head furthest off target, if it is off on its own Holm-adjusted test and twice as far off as any
+    other."""
     if len(heads) < 2:
         return None
     ranked = sorted(heads, key=lambda h: abs(h.offset), reverse=True)
     top, second = ranked[0], ranked[1]
-    if top.p_value is not None and top.p_value < alpha and abs(top.offset) >= 2.0 * abs(second.offset):
+    if top.p_holm is not None and top.p_holm < alpha and abs(top.offset) >= 2.0 * abs(second.offset):
         return top
     return None
 
@@ -350,7 +398,8 @@ def _opt(v: float) -> float | None:
 
 
 def _verdict(lot: LotData, rule: Rule, i: int, c: _Columns, values: np.ndarray | None, parametric: bool,
-             wilcoxon: bool, head_rows: tuple[HeadSummary, ...]) -> Verdict:
+             wilcoxon: bool, head_part: _HeadRows) -> Verdict:
+    head_rows, heads_test, heads_note = head_part
     n, mean, sd, gate = c.n[i], c.mean[i], c.sd[i], c.gate[i]
     unit = lot.unit
     dec = quantity_decimals(_opt(sd))
@@ -395,6 +444,13 @@ def _verdict(lot: LotData, rule: Rule, i: int, c: _Columns, values: np.ndarray |
     else:
         verdict = "review"
         reason = _review_reason(lot, rule, gate, n, mean, sd, normality, q, c.mixup[i])
+    equivalence = None
+    if rule.release == "equivalence" and rule.margin is not None and verdict == "pass":
+        equivalence, verdict, shown_text = _equivalence(rule, fields["test"], n, mean, sd, unit)
+        if verdict == "review":
+            reason = shown_text
+        else:
+            extras.append(shown_text)
     if standout is not None and verdict != "pass" and gate != _UNIT:
         extras.append(f"head {standout.head} is furthest off ({format_quantity(standout.offset, dec)} {unit})")
     excluded_by = (excluded_counts(lot.excluded_by, c.excluded[i]) if c.excluded[i] or lot.excluded_by
@@ -425,13 +481,39 @@ def _verdict(lot: LotData, rule: Rule, i: int, c: _Columns, values: np.ndarray |
     if gate != _UNIT and n > 0 and math.isfinite(mean):
         given = giveaway_of(mean, n, nominal=rule.nominal, target=rule.target, cost_per_unit=rule.cost_per_unit,
                             currency=rule.currency)
-    return Verdict(key=lot.key, rule=rule.name, rule_version=rule.version, n=n, mean=_opt(mean),
+    return Verdict(equivalence=equivalence, key=lot.key, rule=rule.name, rule_version=rule.version, n=n,
+                   mean=_opt(mean),
                    sd=_opt(sd) if n >= 2 else None, giveaway=given, target=rule.target, unit=unit,
                    alternative=rule.alternative,
                    alpha=rule.alpha, effect_size=effect, normality=normality, power=pw, n_for_power=nfp,
                    verdict=verdict, reason=reason, excluded=c.excluded[i], heads=head_rows, files=lot.files,
                    average_quantity=aq, unit_assumed=lot.unit_assumed, excluded_by=excluded_by,
-                   wilcoxon=wilcoxon_info, runs=lot.runs, **fields)
+                   wilcoxon=wilcoxon_info, runs=lot.runs, heads_test=heads_test, heads_test_note=heads_note,
+                   **fields)
+
+
+def _equivalence(rule: Rule, test: str | None, n: int, mean: float, sd: float, unit: str
+                 ) -> tuple[Equivalence | None, str, str]:
+    """With ``release = "equivalence"``, a lot not shown off target passes only when two one-sided tests show
+    its mean within target ± margin: (result, "pass" | "review", the text for the reason)."""
+    assert rule.margin is not None
+    margin_text = f"±{format_quantity(rule.margin, 6, strip=True)} {unit}".rstrip()
+    if test not in ("t", "z"):
+        return None, "review", (f"not shown within {margin_text} of target: the two one-sided tests need the t- or "
+                                "z-test, and normality ruled the t-test out")
+    try:
+        if rule.known_sd is not None:
+            eq = tost_z(n, mean, rule.known_sd, rule.target, rule.margin, rule.alpha)
+        else:
+            eq = tost_t(n, mean, sd, rule.target, rule.margin, rule.alpha)
+    except ValueError as exc:
+        return None, "review", f"not shown within {margin_text} of target: {exc}"
+    if eq.shown:
+        return eq, "pass", (f"shown within {margin_text} of target by two one-sided tests "
+                            f"({format_p(eq.p_value, rule.alpha)})")
+    needed = n_to_show(mean, sd, rule.target, rule.margin, rule.alpha, known_sd=rule.known_sd)
+    return eq, "review", not_shown_reason(rule.margin, rule.target, unit, needed,
+                                          known_sd=rule.known_sd is not None)
 
 
 def _test_reason(verdict: str, what: str, estimate: float, rule: Rule, f: dict[str, Any], q: Any,

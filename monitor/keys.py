@@ -334,6 +334,11 @@ RULE = Section("rule", "Rule files (`rules/*.toml`)", (
     Key("alternative", "string", "two-sided", OneOf(("two-sided", "less", "greater")),
         "two-sided (off target either way), less (low fill), greater (giveaway)"),
     Key("alpha", "number", 0.05, Range(0.0, 0.5, lo_open=True), "significance level of the test, in (0, 0.5]"),
+    Key("release", "string", "no-shift-shown", OneOf(("no-shift-shown", "equivalence")),
+        '"no-shift-shown": a lot passes unless its test shows it off target | "equivalence": it passes only when '
+        "two one-sided tests show its mean within target ± margin at alpha (needs margin); otherwise review"),
+    Key("margin", "number", None, POSITIVE,
+        'half-width of the equivalence range around target, in `unit` (> 0); only with release = "equivalence"'),
     Key("min_n", "integer", 5, Range(2, whole=True),
         "smallest lot the test may judge; smaller lots get `review` (integer >= 2)"),
     Key("known_sd", "number", None, POSITIVE,

@@ -103,7 +103,11 @@ class NormalityResult:
 
 @dataclass(frozen=True)
 class HeadSummary:
-    """Per filler head: n, mean, sd and the offset of its mean from target (which head drifted)."""
+    """Per filler head: n, mean, sd and the offset of its mean from target (which head drifted).
+
+    ``p_value`` is the head's own one-sample test against target; ``p_holm`` the same p Holm-adjusted
+    across the lot's heads that have one (the p that decides whether a head is named as drifting).
+    """
 
     head: str
     n: int
@@ -111,10 +115,30 @@ class HeadSummary:
     sd: float | None
     offset: float
     p_value: float | None = None
+    p_holm: float | None = None
 
     def to_json(self) -> dict[str, Any]:
         return {"head": self.head, "n": self.n, "mean": _num(self.mean), "sd": _num(self.sd),
-                "offset": _num(self.offset), "p_value": _num(self.p_value)}
+                "offset": _num(self.offset), "p_value": _num(self.p_value), "p_holm": _num(self.p_holm)}
+
+
+@dataclass(frozen=True)
+class HeadsTest:
+    """Whether a lot's heads differ from each other: one-way ANOVA, or Kruskal–Wallis when normality failed.
+
+    ``df_within`` is None for Kruskal–Wallis (its H is referred to chi-square with ``df_between`` df).
+    """
+
+    test: str                  # "anova" | "kruskal"
+    statistic: float
+    p_value: float
+    df_between: int
+    df_within: int | None
+    note: str = ""
+
+    def to_json(self) -> dict[str, Any]:
+        return {"test": self.test, "statistic": _num(self.statistic), "p_value": _num(self.p_value),
+                "df_between": self.df_between, "df_within": self.df_within, "note": self.note}
 
 
 @dataclass(frozen=True)
@@ -170,6 +194,9 @@ class Verdict:
     wilcoxon: WilcoxonInfo | None = None   # set when test == "wilcoxon"
     runs: int | None = None        # separate runs of rows that made the lot (monitor.lotmodel); None: not counted
     giveaway: Any = None           # monitor.giveaway.Giveaway when the mean is known in the rule's unit
+    equivalence: Any = None        # monitor.stats.equivalence.Equivalence with release = "equivalence"
+    heads_test: HeadsTest | None = None    # heads compared with each other; None: no heads or nothing to test
+    heads_test_note: str | None = None     # why heads_test is None for a lot that names heads; else None
 
     def to_json(self) -> dict[str, Any]:
         """The documented JSON object (``check --format json``, alert log, templates)."""
@@ -207,6 +234,9 @@ class Verdict:
             "excluded_by": excluded_counts(self.excluded_by, self.excluded),
             "wilcoxon": None if self.wilcoxon is None else self.wilcoxon.to_json(),
             "heads": [h.to_json() for h in self.heads],
+            "heads_test": None if self.heads_test is None else self.heads_test.to_json(),
+            "heads_test_note": self.heads_test_note,
+            "equivalence": None if self.equivalence is None else self.equivalence.to_json(),
             "average_quantity": None if self.average_quantity is None else self.average_quantity.to_json(),
             "runs": self.runs,
             "giveaway": None if self.giveaway is None else self.giveaway.to_json(),

@@ -49,6 +49,8 @@ class Rule:
     products: tuple[str, ...] = RULE.default("products", tuple)
     alternative: str = RULE.default("alternative", str)
     alpha: float = RULE.default("alpha", float)
+    release: str = RULE.default("release", str)
+    margin: float | None = None
     min_n: int = RULE.default("min_n", int)
     known_sd: float | None = None
     shift_of_interest: float | None = None
@@ -182,10 +184,22 @@ def _quantity_keys(table: Mapping[str, Any], values: dict[str, Any], source: str
                             hint='set inspection = "sample" if the export is a sample of a batch')
 
 
+def _release_keys(table: Mapping[str, Any], values: dict[str, Any], source: str) -> None:
+    """release and margin checked together."""
+    if values["release"] == "equivalence" and "margin" not in table:
+        raise _fail(source, "margin", 'missing margin — release = "equivalence" needs the half-width of the '
+                    "range around target", hint=RULE["margin"].doc)
+    if values["release"] != "equivalence" and "margin" in table:
+        raise _fail(source, "margin", 'margin is set but release is not "equivalence"',
+                    hint='set release = "equivalence" to pass lots only when shown within target ± margin, '
+                    "or remove margin")
+
+
 def _parse_rule(table: Mapping[str, Any], source: str, content_hash: str) -> Rule:
     values = read(RULE, table, source=source, error=RuleError)
     normality = read(NORMALITY, values.pop("normality"), source=source, error=RuleError)
     _quantity_keys(table, values, source)
+    _release_keys(table, values, source)
     if "currency" in table and "cost_per_unit" not in table:
         raise _fail(source, "currency", "currency is set but the rule has no cost_per_unit",
                     hint="set cost_per_unit (the cost of one rule unit of product) or remove currency")

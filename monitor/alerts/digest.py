@@ -1,5 +1,6 @@
 """The daily digest: each line's lots since the last digest (passed, held, reviewed, mean offset from
-target) and the export files used or rejected, raised once per scheduled time even across restarts.
+target, the lots by code, giveaway per day), its holds still open, and the export files used or rejected,
+raised once per scheduled time even across restarts.
 
 The digest is a scheduled producer: it enqueues a digest alert like any other and knows nothing of the
 channels. The scheduled time a digest covers is stored in ``digest_runs`` in the same transaction that
@@ -23,10 +24,13 @@ from apscheduler.triggers.cron import CronTrigger
 
 from monitor.alerts import kinds
 from monitor.alerts.settings import DigestSettings
+from monitor.giveaway import total_giveaway
+from monitor.record import LotEntry, entries
+from monitor.state import openholds
 from monitor.state import outbox as repo
 from monitor.state.database import write_tx
 from monitor.state.files import processed_since
-from monitor.state.verdicts import decided_between
+from monitor.state.verdicts import VerdictRow, decided_between
 
 log = logging.getLogger("monitor.alerts")
 MAX_LISTED_FILES = 50
@@ -66,6 +70,68 @@ def _parse(iso: str) -> datetime | None:
     return dt if dt.tzinfo else dt.replace(tzinfo=UTC)
 
 
+def _open_hold(e: LotEntry, end: datetime) -> dict[str, Any]:
+    return {"product": e.product, "lot": e.lot, "verdict": e.verdict, "decided_at": e.decided_at,
+            "age_hours": round((end - e.decided).total_seconds() / 3600.0, 2)}
+
+
+def _lot_by_code(e: LotEntry) -> dict[str, Any]:
+    return {"product": e.product, "lot": e.lot, "verdict": e.verdict, "n": e.n, "mean": e.mean,
+            "giveaway_per_pack": None if e.giveaway is None else e.giveaway.per_pack,
+            "disposition": None if e.disposition is None else e.disposition.action}
+
+
+def _giveaway_days(items: list[LotEntry], zone: ZoneInfo) -> list[dict[str, Any]]:
+    """The lots' giveaway summed per local day, product and unit (``math.fsum`` in ``total_giveaway``)."""
+    groups: dict[tuple[str, str, str], list[LotEntry]] = {}
+    for e in items:
+        groups.setdefault((e.decided.astimezone(zone).date().isoformat(), e.product, e.unit), []).append(e)
+    out = []
+    for (day, product, unit), lots in sorted(groups.items()):
+        total, unknown = total_giveaway((e.giveaway, e.n) for e in lots)
+        out.append({"day": day, "product": product, "unit": unit, "lots": len(lots),
+                    "packs": sum(e.n for e in lots if e.giveaway is not None),
+                    "per_pack": None if total is None else total.per_pack,
+                    "total": None if total is None else total.total,
+                    "cost": None if total is None else total.cost,
+                    "currency": None if total is None else total.currency,
+                    "lots_without_giveaway": unknown})
+    return out
+
+
+def record_sections(conn: sqlite3.Connection, start: datetime, end: datetime, zone: ZoneInfo
+                    ) -> dict[str, dict[str, list[dict[str, Any]]]]:
+    """Per line: ``open_holds`` (every hold / review decided before ``end`` with no disposition, any age,
+    oldest first; ``age_hours`` at ``end``), ``lots_by_code`` (the period's lots, latest verdict each, by lot
+    code) and ``giveaway`` (the period's lots per local day and product)."""
+    out: dict[str, dict[str, list[dict[str, Any]]]] = {}
+
+    def line_of(name: str) -> dict[str, list[dict[str, Any]]]:
+        return out.setdefault(name, {"open_holds": [], "lots_by_code": [], "giveaway": []})
+
+    for e in entries(openholds.open_hold_rows(conn), {}):
+        if e.decided < end:
+            line_of(e.line)["open_holds"].append(_open_hold(e, end))
+    latest: dict[tuple[str, str, str], tuple[datetime, VerdictRow]] = {}
+    for row in openholds.verdicts_between(conn, _utc(start - timedelta(days=1)), _utc(end + timedelta(days=1))):
+        t = _parse(row.decided_at)
+        if t is None or not start <= t < end:
+            continue
+        key = (row.line or "", row.product or "", row.lot or "")
+        if key not in latest or latest[key][0] <= t:
+            latest[key] = (t, row)
+    rows = [row for _t, row in latest.values()]
+    period = entries(rows, openholds.dispositions_of(conn, [r.id for r in rows]))
+    by_line: dict[str, list[LotEntry]] = {}
+    for e in period:
+        by_line.setdefault(e.line or "", []).append(e)
+    for name, items in by_line.items():
+        sec = line_of(name)
+        sec["lots_by_code"] = [_lot_by_code(e) for e in sorted(items, key=lambda e: (e.lot, e.product))]
+        sec["giveaway"] = _giveaway_days(items, zone)
+    return out
+
+
 def summarise(conn: sqlite3.Connection, start: datetime, end: datetime, zone: ZoneInfo) -> dict[str, Any]:
     """The digest's data for decisions in [start, end): per line and product, the latest verdict per lot."""
     latest: dict[tuple[str, str, str], tuple[datetime, str, float | None, float | None, str, str | None]] = {}
@@ -94,7 +160,7 @@ def summarise(conn: sqlite3.Connection, start: datetime, end: datetime, zone: Zo
         p[{"pass": "passed", "hold": "held", "review": "reviewed"}.get(verdict, "reviewed")] += 1
         if isinstance(mean, (int, float)) and isinstance(target, (int, float)) and math.isfinite(mean - target):
             p["_offsets"].append(mean - target)
-    out_lines = []
+    out_lines: list[dict[str, Any]] = []
     for line in sorted(lines):
         products = []
         for (_product, _unit), p in sorted(lines[line].items()):
@@ -102,6 +168,17 @@ def summarise(conn: sqlite3.Connection, start: datetime, end: datetime, zone: Zo
             p["mean_offset"] = sum(offs) / len(offs) if offs else None
             products.append(p)
         out_lines.append({"line": line, "products": products})
+    try:
+        sections = record_sections(conn, start, end, zone)
+    except sqlite3.Error as exc:
+        sections = {}
+        notes.append(f"lot record not readable: {exc}")
+    known = {ln["line"] for ln in out_lines}
+    out_lines.extend({"line": line, "products": []} for line in sorted(sections) if line not in known)
+    out_lines.sort(key=lambda ln: ln["line"])
+    for ln in out_lines:
+        sec = sections.get(ln["line"])
+        ln.update(sec if sec is not None else {"open_holds": [], "lots_by_code": [], "giveaway": []})
     files = {"done": 0, "rejected": 0, "duplicate": 0}
     rejected: list[dict[str, str]] = []
     try:

@@ -105,7 +105,14 @@ SAMPLE_DIGEST = {"period_start": "2026-11-30T05:00:00+00:00", "period_end": "202
                  "timezone": "Europe/Berlin",
                  "lines": [{"line": "L1", "products": [{"product": "JAM-340", "unit": "g", "lots": 3, "passed": 2,
                                                         "held": 1, "reviewed": 0, "mean_offset": 0.4,
-                                                        "screen": {"met": 2, "not met": 1, "undecided": 0}}]}],
+                                                        "screen": {"met": 2, "not met": 1, "undecided": 0}}],
+                            "open_holds": [{"product": "JAM-340", "lot": "J7", "verdict": "hold",
+                                            "decided_at": "2026-11-29T09:00:00+00:00", "age_hours": 44.0}],
+                            "lots_by_code": [{"product": "JAM-340", "lot": "J7", "verdict": "hold", "n": 20,
+                                              "mean": 338.9, "giveaway_per_pack": -1.1, "disposition": None}],
+                            "giveaway": [{"day": "2026-11-30", "product": "JAM-340", "unit": "g", "lots": 3,
+                                          "packs": 60, "total": 24.0, "cost": 0.096, "currency": "EUR",
+                                          "per_pack": 0.4, "lots_without_giveaway": 0}]}],
                  "files": {"done": 3, "rejected": 1, "duplicate": 0},
                  "rejected_files": [{"path": "exports/x.csv", "reason": "no lot column", "processed_at": ""}]}
 
@@ -126,7 +133,9 @@ def sample_context(kind: str = "hold") -> dict[str, Any]:
         "excluded_by": {"blank": 1, "not_a_number": 0, "not_finite": 0, "dropped_value": 0},
         "wilcoxon": {"method": "exact", "zeros": 1, "n_used": 9},
         "average_quantity": {"passed": False, "reason": "average-quantity screen fails: 1 pack short"},
-        "heads": [{"head": "H1", "n": 10, "mean": 497.4, "sd": 0.6, "offset": -2.6, "p_value": 1e-5}],
+        "heads": [{"head": "H1", "n": 10, "mean": 497.4, "sd": 0.6, "offset": -2.6, "p_value": 1e-5, "p_holm": 3e-5}],
+        "heads_test": {"test": "anova", "statistic": 9.4, "p_value": 0.0002, "df_between": 2, "df_within": 27,
+                       "note": "one-way ANOVA across 3 heads, F(2, 27)"}, "heads_test_note": None,
         "values": [497.0, 498.0], "path": "exports/x.csv", "error": "example", "channel": "email"}
     if kind == "verdict-changed":
         data.update(verdict="pass", reason="no shift of the mean shown", why="12 late values reopened the lot",

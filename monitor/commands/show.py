@@ -16,7 +16,7 @@ from monitor.record import entry, parse_lot_name, payload_of
 from monitor.state import dispositions, history, lots, rule_texts
 
 FORMATS = ("table", "json")
-HEAD_KEYS = ("head", "n", "mean", "sd", "offset", "p_value")
+HEAD_KEYS = ("head", "n", "mean", "sd", "offset", "p_value", "p_holm")
 
 
 class LotNotFound(LotwardenError):

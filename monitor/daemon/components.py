@@ -21,6 +21,7 @@ from monitor.alerts.dispatch import Dispatcher
 from monitor.daemon.config import Config
 from monitor.daemon.instance_lock import InstanceLock
 from monitor.daemon.intake import Intake
+from monitor.daemon.reminders import ReminderJob
 from monitor.daemon.watcher import FolderWatcher, HintFn, NameFilter, SettleTracker
 from monitor.errors import LotwardenError
 from monitor.ingest.profile import FeedProfile, profile_for
@@ -80,7 +81,7 @@ class Components:
     core: Core
     watching: Watching
     dispatcher: Dispatcher | None
-    dispatch_jobs: tuple[str, ...] = ()     # scheduler jobs the dispatcher added (digest), removed with it
+    dispatch_jobs: tuple[str, ...] = ()     # scheduler jobs of [alerts] (digest, reminders), removed with it
 
 
 def open_core(config: Config, rules: Sequence[Rule]) -> Core:
@@ -122,6 +123,17 @@ def schedule_dispatcher(dispatcher: Dispatcher | None, scheduler: BaseScheduler)
     return tuple(str(j.id) for j in scheduler.get_jobs() if j.id not in before)
 
 
+def schedule_reminders(config: Config, store: Database, dispatcher: Dispatcher | None,
+                       scheduler: BaseScheduler) -> tuple[str, ...]:
+    """Add the reminder job of open holds when ``[alerts] reminder_minutes`` > 0; return its job id."""
+    minutes = config.alerts.reminder_minutes
+    if minutes <= 0 or not config.alerts.channels:
+        return ()
+    job = ReminderJob(store, minutes, config.alerts.channels,
+                      on_enqueued=dispatcher.kick if dispatcher is not None else None)
+    return (job.schedule(scheduler),)
+
+
 def unschedule(job_ids: Sequence[str], scheduler: BaseScheduler) -> None:
     for job_id in job_ids:
         try:
@@ -152,6 +164,7 @@ def build(config: Config, rules: Sequence[Rule], core: Core, scheduler: BaseSche
     dispatcher = make_dispatcher(config, core.store)
     try:
         jobs = schedule_dispatcher(dispatcher, scheduler)
+        jobs += schedule_reminders(config, core.store, dispatcher, scheduler)
         watching = make_watching(config, on_hint)
     except BaseException:
         if dispatcher is not None:
@@ -180,5 +193,6 @@ def rebuild(old: Components, config: Config, rules: Sequence[Rule], scheduler: B
             dispatcher.close()
         dispatcher = make_dispatcher(config, old.core.store)   # it checks the templates itself
         jobs = schedule_dispatcher(dispatcher, scheduler)
+        jobs += schedule_reminders(config, old.core.store, dispatcher, scheduler)
     return Components(config=config, rules=tuple(rules), core=old.core, watching=watching,
                       dispatcher=dispatcher, dispatch_jobs=jobs)

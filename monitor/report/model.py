@@ -143,6 +143,7 @@ class Report:
     period_end: datetime
     generated_at: datetime
     sections: tuple[ProductSection, ...]
+    zone: str = ""                      # the time zone the page's times are shown in (name for the header)
 
     def __post_init__(self) -> None:
         for what, value in (("period start", self.period_start), ("period end", self.period_end),

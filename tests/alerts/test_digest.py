@@ -103,7 +103,10 @@ def test_digest_once_across_restart_and_catch_up(db_path, tmp_path):
         d.close()
     got = digests(tmp_path)
     assert len(got) == 2 and got[1]["data"]["period_start"] == "2026-12-02T05:00:00+00:00"
-    assert got[1]["data"]["lines"][0]["products"][0]["held"] == 1      # A3, decided at 05:00:00 on the 2nd
+    # L1 is listed too now (its hold J0 is still open) but had no lots in this period
+    by_line = {ln["line"]: ln for ln in got[1]["data"]["lines"]}
+    assert by_line["L1"]["products"] == [] and [h["lot"] for h in by_line["L1"]["open_holds"]] == ["J0"]
+    assert by_line["L2"]["products"][0]["held"] == 1      # A3, decided at 05:00:00 on the 2nd
     # too late: more than catch_up_hours after the due time nothing is raised
     d = Dispatcher(db_path, settings(tmp_path, catch_up_hours=1.0))
     try:

@@ -23,7 +23,7 @@ from monitor.state.database import Database
 TOP_KEYS = {"line", "product", "lot", "latest", "verdicts", "dispositions", "files", "audit", "heads"}
 VERDICT_KEYS = {"id", "decided_at", "verdict", "n", "mean", "target", "unit", "p_value", "reason", "rule",
                 "rule_version", "rule_hash", "close_reason", "rule_text", "result"}
-HEAD_KEYS = {"head", "n", "mean", "sd", "offset", "p_value"}
+HEAD_KEYS = {"head", "n", "mean", "sd", "offset", "p_value", "p_holm"}
 
 
 def lotwarden(*args: str | Path, timeout: float = 60) -> subprocess.CompletedProcess[str]:

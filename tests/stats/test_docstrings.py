@@ -6,7 +6,7 @@ import importlib
 import pytest
 
 MODULES = ["monitor.stats.location", "monitor.stats.moments", "monitor.stats.normality", "monitor.stats.power",
-           "monitor.stats.wilcoxon", "monitor.stats.wording", "monitor.stats.equivalence"]
+           "monitor.stats.wilcoxon", "monitor.stats.wording", "monitor.stats.equivalence", "monitor.stats.heads"]
 
 
 @pytest.mark.parametrize("name", MODULES)
