@@ -15,7 +15,7 @@ from typing import NoReturn
 from monitor import __version__
 from monitor.errors import LotwardenError
 
-COMMANDS = ("check", "plan", "run", "validate", "demo", "lots", "show", "dispose", "report")
+COMMANDS = ("check", "plan", "run", "validate", "demo", "lots", "show", "dispose", "report", "replay")
 
 
 class _Parser(argparse.ArgumentParser):

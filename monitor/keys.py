@@ -31,10 +31,41 @@ from monitor.keyschema import (
 from monitor.units import ALLOWED as ALLOWED_UNITS
 from monitor.units import canonical_unit
 
-__all__ = ["ALERTS", "ALERTS_COMMAND", "ALERTS_DIGEST", "ALERTS_EMAIL", "ALERTS_EMAIL_ROUTE", "ALERTS_LOG",
-           "CANONICAL_COLUMNS", "CONFIG", "DEFAULT_IGNORE", "DEFAULT_INCLUDE", "DELIMITERS", "EMPTY", "NORMALITY",
-           "PROFILE", "REQUIRED", "RULE", "SECTIONS", "STATE", "TYPES", "WATCH", "Derived", "Invalid", "Key",
-           "OneOf", "Range", "Required", "Section", "Text", "Texts", "convert", "path_keys", "read"]
+__all__ = [
+    "ALERTS",
+    "ALERTS_COMMAND",
+    "ALERTS_DIGEST",
+    "ALERTS_EMAIL",
+    "ALERTS_EMAIL_ROUTE",
+    "ALERTS_LOG",
+    "CANONICAL_COLUMNS",
+    "CONFIG",
+    "DEFAULT_IGNORE",
+    "DEFAULT_INCLUDE",
+    "DELIMITERS",
+    "DRIFT",
+    "EMPTY",
+    "NORMALITY",
+    "PROFILE",
+    "REQUIRED",
+    "RULE",
+    "SECTIONS",
+    "STATE",
+    "TYPES",
+    "WATCH",
+    "Derived",
+    "Invalid",
+    "Key",
+    "OneOf",
+    "Range",
+    "Required",
+    "Section",
+    "Text",
+    "Texts",
+    "convert",
+    "path_keys",
+    "read",
+]
 
 
 # ------------------------------------------------------------------------------------ checks of one value
@@ -372,6 +403,9 @@ RULE = Section("rule", "Rule files (`rules/*.toml`)", (
     Key("currency", "string", None, Text(solid=True, plain=True, strip=True),
         'currency of `cost_per_unit`, shown beside costs (text, e.g. "EUR"); needs cost_per_unit'),
     Key("normality", "table", EMPTY, None, "[normality]: the normality gate (keys below)"),
+    Key("drift", "table", None, None,
+        "[drift]: watch the lots' location statistics across lots for a creeping mean (keys below); "
+        "no table: no drift watch"),
 ))
 NORMALITY = Section("normality", "Rule files, `[normality]` table", (
     Key("test", "string", "shapiro", OneOf(("shapiro",)), 'normality test: "shapiro" (Shapiro–Wilk)'),
@@ -382,9 +416,20 @@ NORMALITY = Section("normality", "Rule files, `[normality]` table", (
     Key("on_unassessed", "string", "proceed", OneOf(("proceed", "review")),
         'lots known only by n/mean/sd: "proceed" with the t-test or "review"'),
 ), prefix="normality.")
+DRIFT = Section("drift", "Rule files, `[drift]` table (drift across lots)", (
+    Key("method", "string", "cusum", OneOf(("cusum", "ewma")),
+        '"cusum": tabular two-sided CUSUM (keys k, h) | "ewma": EWMA chart (keys lambda, L); each closed lot '
+        "adds its t (or z) against target, per line and product, in the order lots close"),
+    Key("k", "number", 0.5, Range(0.0), "CUSUM allowance (slack) per lot, in units of the lot statistic (>= 0)"),
+    Key("h", "number", 5.0, POSITIVE, "CUSUM decision limit: a signal when S+ or S- exceeds it (> 0)"),
+    Key("lambda", "number", 0.2, Range(0.0, 1.0, lo_open=True), "EWMA weight of the newest lot, in (0, 1]"),
+    Key("L", "number", 3.0, POSITIVE, "EWMA limit width in standard deviations of the EWMA statistic (> 0)"),
+    Key("heads", "bool", False, None,
+        "true: the same watch per filler head across lots (the head's t against target), when exports name heads"),
+), prefix="drift.")
 
 SECTIONS: tuple[Section, ...] = (CONFIG, WATCH, STATE, PROFILE, ALERTS, ALERTS_LOG, ALERTS_EMAIL,
-                                 ALERTS_EMAIL_ROUTE, ALERTS_COMMAND, ALERTS_DIGEST, RULE, NORMALITY)
+                                 ALERTS_EMAIL_ROUTE, ALERTS_COMMAND, ALERTS_DIGEST, RULE, NORMALITY, DRIFT)
 
 
 def path_keys() -> list[tuple[Section, Key]]:

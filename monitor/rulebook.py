@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import Any
 
 from monitor.errors import RuleError
-from monitor.keys import NORMALITY, RULE, read
+from monitor.keys import DRIFT, NORMALITY, RULE, read
 from monitor.tomlfile import read_toml_text
 
 ALTERNATIVES = ("two-sided", "less", "greater")
@@ -24,7 +24,7 @@ ON_FAIL = ("review", "wilcoxon", "ignore")
 ON_UNASSESSED = ("proceed", "review")
 # Every key of a rule file and of its [normality] table is declared in monitor.keys (RULE, NORMALITY);
 # these are their {key: (default, doc)} views for older callers.
-RULE_KEYS: dict[str, tuple[Any, str]] = {k: v for k, v in RULE.table().items() if k != "normality"}
+RULE_KEYS: dict[str, tuple[Any, str]] = {k: v for k, v in RULE.table().items() if k not in ("normality", "drift")}
 NORMALITY_KEYS: dict[str, tuple[Any, str]] = NORMALITY.table()
 
 
@@ -37,6 +37,23 @@ class NormalityRule:
     on_fail: str = NORMALITY.default("on_fail", str)
     on_unassessed: str = NORMALITY.default("on_unassessed", str)
     enabled: bool = True
+
+
+@dataclass(frozen=True)
+class DriftRule:
+    """The drift watch of a rule (``[drift]``): CUSUM (k, h) or EWMA (lambda, L) over the lots' statistics."""
+
+    method: str = DRIFT.default("method", str)
+    k: float = DRIFT.default("k", float)
+    h: float = DRIFT.default("h", float)
+    lam: float = DRIFT.default("lambda", float)
+    L: float = DRIFT.default("L", float)
+    heads: bool = DRIFT.default("heads", bool)
+
+    def values(self) -> dict[str, Any]:
+        """The table's keys as written in a rule file (``lambda`` for ``lam``)."""
+        return {"method": self.method, "k": self.k, "h": self.h, "lambda": self.lam, "L": self.L,
+                "heads": self.heads}
 
 
 @dataclass(frozen=True)
@@ -65,6 +82,7 @@ class Rule:
     cost_per_unit: float | None = None
     currency: str | None = None
     normality: NormalityRule = field(default_factory=NormalityRule)
+    drift: DriftRule | None = None
     source: str | None = None
     content_hash: str = ""
     text: str = field(default="", compare=False, repr=False)   # the rule file's full text as read
@@ -79,6 +97,8 @@ class Rule:
             v = getattr(self, f.name)
             if f.name == "normality":
                 v = {k: w for k, w in dataclasses.asdict(v).items() if k != "enabled"}
+            elif f.name == "drift":
+                v = None if v is None else v.values()
             elif isinstance(v, tuple):
                 v = list(v)
             out[f.name] = v
@@ -198,9 +218,15 @@ def _release_keys(table: Mapping[str, Any], values: dict[str, Any], source: str)
 def _parse_rule(table: Mapping[str, Any], source: str, content_hash: str) -> Rule:
     values = read(RULE, table, source=source, error=RuleError)
     normality = read(NORMALITY, values.pop("normality"), source=source, error=RuleError)
+    drift_table = values.pop("drift")
+    drift = None
+    if drift_table is not None:
+        d = read(DRIFT, drift_table, source=source, error=RuleError)
+        drift = DriftRule(method=d["method"], k=d["k"], h=d["h"], lam=d["lambda"], L=d["L"], heads=d["heads"])
     _quantity_keys(table, values, source)
     _release_keys(table, values, source)
     if "currency" in table and "cost_per_unit" not in table:
         raise _fail(source, "currency", "currency is set but the rule has no cost_per_unit",
                     hint="set cost_per_unit (the cost of one rule unit of product) or remove currency")
-    return Rule(normality=NormalityRule(**normality), source=source, content_hash=content_hash, **values)
+    return Rule(normality=NormalityRule(**normality), drift=drift, source=source, content_hash=content_hash,
+                **values)

@@ -13,7 +13,7 @@ from monitor.daemon.config import Config, StateSettings, WatchSettings, load_con
 from monitor.errors import ConfigError
 from monitor.ingest.profile import FeedProfile
 from monitor.keysdoc import render
-from monitor.rulebook import NormalityRule, Rule
+from monitor.rulebook import DriftRule, NormalityRule, Rule
 
 # settings class -> (its section, fields that are no key of the file)
 CLASSES: dict[type, tuple[K.Section, set[str]]] = {
@@ -22,15 +22,16 @@ CLASSES: dict[type, tuple[K.Section, set[str]]] = {
     S.LogSettings: (K.ALERTS_LOG, set()), S.EmailSettings: (K.ALERTS_EMAIL, {"routes"}),
     S.Route: (K.ALERTS_EMAIL_ROUTE, set()), S.CommandSettings: (K.ALERTS_COMMAND, set()),
     S.DigestSettings: (K.ALERTS_DIGEST, set()), Rule: (K.RULE, {"source", "content_hash", "text"}),
-    NormalityRule: (K.NORMALITY, {"enabled"}),
+    NormalityRule: (K.NORMALITY, {"enabled"}), DriftRule: (K.DRIFT, set()),
 }
+ALIASES = {"lam": "lambda"}   # a field named apart from its key ("lambda" is a Python keyword)
 
 
 def test_every_setting_is_a_declared_key_and_back() -> None:
     """Each field of a settings value has a declared key (so it is documented), and each key a field."""
     assert sorted(id(s) for s, _ in CLASSES.values()) == sorted(id(s) for s in K.SECTIONS)
     for cls, (section, extra) in CLASSES.items():
-        fields = {f.name for f in dataclasses.fields(cls)} - extra
+        fields = {ALIASES.get(f.name, f.name) for f in dataclasses.fields(cls)} - extra
         names = set(section.names) - ({"route"} if section is K.ALERTS_EMAIL else set())
         assert fields == names, cls.__name__
 
@@ -39,9 +40,10 @@ def test_dataclass_defaults_are_the_declared_defaults() -> None:
     """A settings value built without a key holds the same default the reader gives (one default per key)."""
     for cls, (section, _extra) in CLASSES.items():
         for f in dataclasses.fields(cls):
-            if f.name not in section.names or f.default is dataclasses.MISSING or section[f.name].type == "table":
+            name = ALIASES.get(f.name, f.name)
+            if name not in section.names or f.default is dataclasses.MISSING or section[name].type == "table":
                 continue   # a sub-table's field holds what its own section's values build
-            declared = section[f.name].default
+            declared = section[name].default
             if isinstance(declared, (K.Required, K.Derived)):
                 continue
             assert f.default == declared, (cls.__name__, f.name)

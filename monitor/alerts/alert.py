@@ -21,6 +21,7 @@ ALERT_KINDS = (
     "disposition",       # a person released, reworked or scrapped a held lot (told to those who got the hold)
     "reminder",          # a hold / review still has no disposition: told again every reminder_minutes
     "rule-changed",      # a reloaded rule's values changed (old -> new per key)
+    "drift",             # a line's product (or one filler head) is creeping off target across lots
     "daemon-started",
     "daemon-stopped",
     "digest",            # the daily summary

@@ -10,6 +10,7 @@ from typing import Any
 
 from monitor.alerts.alert import Alert
 from monitor.alerts.chart import render_chart
+from monitor.alerts.drift_chart import render_drift_chart
 from monitor.alerts.headers import NOTICE_POLICY, clean_header_text, message_id
 from monitor.alerts.templates import CAUTION, RenderedMessage, TemplateSet, message_context
 from monitor.errors import TemplateError
@@ -20,8 +21,21 @@ MAX_CHARTS = 10     # charts per message: a grouped message of 50 holds stays sm
 
 
 def chart_for(alert: Alert) -> bytes | None:
-    """The PNG chart of a held (or re-judged) lot, or None when the alert carries no values (or drawing fails)."""
+    """The PNG chart of a held (or re-judged) lot, or of a drift signal (its chart across lots); None when
+    the alert carries nothing to draw or drawing fails."""
     d = alert.data
+    if alert.kind == "drift":
+        signal = d.get("drift")
+        if not isinstance(signal, dict):
+            return None
+        head = signal.get("head")
+        where = f"line {alert.line} · {alert.product}" + (f" · head {head}" if head else "")
+        title = clean_header_text(f"{where} · {str(signal.get('method', '')).upper()}")
+        try:
+            return render_drift_chart(signal, title=title)
+        except Exception:                  # a chart is a courtesy; the notice must go out without it
+            log.exception("drift chart for %s could not be drawn", alert.dedup_key)
+            return None
     values = d.get("values")
     if alert.kind not in CHART_KINDS or not isinstance(values, list) or not values:
         return None
@@ -54,7 +68,7 @@ def build_message(alerts: list[Alert], *, sender: str, recipients: tuple[str, ..
     """One message for ``alerts`` (its own kind's templates for one alert, the group templates for several).
 
     ``mid``: the Message-ID to use (a message repeated as recorded); by default the one of these alerts."""
-    charts: list[tuple[str, bytes]] = []
+    charts: list[tuple[str, bytes, str]] = []      # (cid, png, file name stem)
     items: list[dict[str, Any]] = []
     if mid is None:
         mid = message_id([a.dedup_key for a in alerts], sender.rpartition("@")[2])
@@ -64,7 +78,7 @@ def build_message(alerts: list[Alert], *, sender: str, recipients: tuple[str, ..
         cid = None
         if png is not None:
             cid = f"chart{i}.{token}@lotwarden"
-            charts.append((cid, png))
+            charts.append((cid, png, "drift-chart" if a.kind == "drift" else "lot-chart"))
         items.append({"kind": a.kind, "dedup_key": a.dedup_key, "created_at": a.created_at, "line": a.line,
                       "product": a.product, "lot": a.lot, "data": a.data, "chart_cid": cid})
     generated = datetime.fromtimestamp(now, UTC)
@@ -84,7 +98,7 @@ def build_message(alerts: list[Alert], *, sender: str, recipients: tuple[str, ..
     if charts:
         html_part = msg.get_body(preferencelist=("html",))
         assert isinstance(html_part, EmailMessage)
-        for n, (cid, png) in enumerate(charts, start=1):
-            html_part.add_related(png, "image", "png", cid=f"<{cid}>", filename=f"lot-chart-{n}.png",
+        for n, (cid, png, stem) in enumerate(charts, start=1):
+            html_part.add_related(png, "image", "png", cid=f"<{cid}>", filename=f"{stem}-{n}.png",
                                   disposition="inline")
     return msg

@@ -26,6 +26,7 @@ from monitor.alerts import kinds
 from monitor.alerts.settings import DigestSettings
 from monitor.giveaway import total_giveaway
 from monitor.record import LotEntry, entries
+from monitor.state import drift as drift_store
 from monitor.state import openholds
 from monitor.state import outbox as repo
 from monitor.state.database import write_tx
@@ -103,11 +104,18 @@ def record_sections(conn: sqlite3.Connection, start: datetime, end: datetime, zo
                     ) -> dict[str, dict[str, list[dict[str, Any]]]]:
     """Per line: ``open_holds`` (every hold / review decided before ``end`` with no disposition, any age,
     oldest first; ``age_hours`` at ``end``), ``lots_by_code`` (the period's lots, latest verdict each, by lot
-    code) and ``giveaway`` (the period's lots per local day and product)."""
+    code), ``giveaway`` (the period's lots per local day and product) and ``drift`` (the period's drift
+    signals, oldest first)."""
     out: dict[str, dict[str, list[dict[str, Any]]]] = {}
 
     def line_of(name: str) -> dict[str, list[dict[str, Any]]]:
-        return out.setdefault(name, {"open_holds": [], "lots_by_code": [], "giveaway": []})
+        return out.setdefault(name, {"open_holds": [], "lots_by_code": [], "giveaway": [], "drift": []})
+
+    for sig in drift_store.signals(conn, since=_utc(start), until=_utc(end)):
+        line_of(sig.line)["drift"].append({"product": sig.product, "head": sig.head or None, "lot": sig.lot,
+                                           "at": sig.at, "method": sig.method, "direction": sig.direction,
+                                           "statistic": sig.statistic, "limit": sig.limit,
+                                           "lots": len(sig.data.get("lots") or ())})
 
     for e in entries(openholds.open_hold_rows(conn), {}):
         if e.decided < end:
@@ -178,7 +186,7 @@ def summarise(conn: sqlite3.Connection, start: datetime, end: datetime, zone: Zo
     out_lines.sort(key=lambda ln: ln["line"])
     for ln in out_lines:
         sec = sections.get(ln["line"])
-        ln.update(sec if sec is not None else {"open_holds": [], "lots_by_code": [], "giveaway": []})
+        ln.update(sec if sec is not None else {"open_holds": [], "lots_by_code": [], "giveaway": [], "drift": []})
     files = {"done": 0, "rejected": 0, "duplicate": 0}
     rejected: list[dict[str, str]] = []
     try:

@@ -65,6 +65,13 @@ def reminder(*, line: str, product: str, lot: str, verdict_id: int, number: int,
                  data={"verdict": dict(verdict), "number": number, "open_minutes": round(open_minutes, 1)})
 
 
+def drift(*, line: str, product: str, lot: str, signal_id: int, signal: Mapping[str, Any], at: str) -> Alert:
+    """A drift chart crossed its limit at lot ``lot``; ``signal``: ``DriftSignal.to_json()`` (method, direction,
+    statistic, limit, lots, head, points, settings, rule, rule_version). Told once per stored signal."""
+    return Alert(kind="drift", dedup_key=f"drift|{line}|{product}|{signal.get('head') or ''}|{lot}|{signal_id}",
+                 created_at=at, line=line, product=product, lot=lot, data={"drift": dict(signal)})
+
+
 def rule_changed(*, rule: str, file: str, old_version: str, new_version: str,
                  changes: Sequence[Mapping[str, Any]], at: str) -> Alert:
     """A reloaded rule's values changed; ``changes``: one {key, old, new} per changed key, in key order. The

@@ -117,6 +117,15 @@ SAMPLE_DIGEST = {"period_start": "2026-11-30T05:00:00+00:00", "period_end": "202
                  "rejected_files": [{"path": "exports/x.csv", "reason": "no lot column", "processed_at": ""}]}
 
 
+SAMPLE_DRIFT = {"method": "cusum", "direction": "up", "statistic": 4.35, "limit": 4.0,
+                "lots": ["A1001", "A1002", "A1003", "A1004"], "head": "H2", "earlier_lots": 0,
+                "points": [{"lot": "A1001", "z": 1.1, "upper": 0.6, "lower": 0.0, "limit": 4.0},
+                           {"lot": "A1002", "z": 1.6, "upper": 1.7, "lower": 0.0, "limit": 4.0},
+                           {"lot": "A1003", "z": 1.25, "upper": 2.45, "lower": 0.0, "limit": 4.0},
+                           {"lot": "A1004", "z": 2.4, "upper": 4.35, "lower": 0.0, "limit": 4.0}],
+                "settings": {"k": 0.5, "h": 4.0}, "rule": "oat-500", "rule_version": "0000"}
+
+
 def sample_context(kind: str = "hold") -> dict[str, Any]:
     """A context with every field the shipped templates use (for the load-time test render)."""
     if kind == "digest":
@@ -142,7 +151,7 @@ def sample_context(kind: str = "hold") -> dict[str, Any]:
                     previous={"verdict": "hold", "decided_at": "2026-12-01T05:00:00+00:00",
                               "reason": "mean below target", "rule": "oat-500", "rule_version": "0000", "n": 8,
                               "mean": 497.1, "p_value": 1e-5})
-    if kind in ("disposition", "reminder", "rule-changed"):
+    if kind in ("disposition", "reminder", "rule-changed", "drift"):
         told = {"verdict_id": 7, "verdict": "hold", "decided_at": "2026-12-01T05:00:00+00:00", "rule": "oat-500",
                 "rule_version": "0000", "n": 10, "mean": 497.4, "target": 500.0, "unit": "g", "p_value": 1e-6,
                 "reason": "mean below target"}
@@ -153,11 +162,13 @@ def sample_context(kind: str = "hold") -> dict[str, Any]:
             "reminder": {"verdict": told, "number": 1, "open_minutes": 240.0},
             "rule-changed": {"rule": "oat-500", "file": "rules/oat-500.toml", "old_version": "0000",
                              "new_version": "1111", "changes": [{"key": "alpha", "old": 0.05, "new": 0.01}]},
+            "drift": {"drift": dict(SAMPLE_DRIFT)},
         }
         extra = samples[kind]
         one = {"kind": kind, "dedup_key": f"{kind}|x", "created_at": "2026-12-01T07:00:00+00:00",
                "line": "" if kind == "rule-changed" else "L2", "product": "" if kind == "rule-changed" else "OAT-500",
-               "lot": "" if kind == "rule-changed" else "A1001", "data": extra, "chart_cid": None}
+               "lot": "" if kind == "rule-changed" else "A1004" if kind == "drift" else "A1001", "data": extra,
+               "chart_cid": "chart0" if kind == "drift" else None}
         return message_context([one], folded=False, generated_at="2026-12-01T07:00:00+00:00")
     item: dict[str, Any] = {"kind": "verdict-changed" if kind == "verdict-changed" else "hold",
             "dedup_key": "hold|L2|OAT-500|A1001|0000", "created_at": "2026-12-01T06:00:00+00:00",

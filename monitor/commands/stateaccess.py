@@ -28,16 +28,22 @@ def db_path(config: Config) -> Path:
     return Path(config.state.folder) / DB_NAME
 
 
+def existing_db(config: Config, config_path: str | Path) -> Path:
+    """The config's state database file; StateMissing naming ``state.folder`` when there is none yet."""
+    path = db_path(config)
+    if not path.is_file():
+        raise StateMissing(f"no state database at {path}", path=config_path, key="state.folder",
+                           hint="`lotwarden run` with this config creates it when it starts")
+    return path
+
+
 @contextmanager
 def open_state(config_path: str | Path) -> Iterator[tuple[Config, Database]]:
     """The config and its state database, upgraded to this code's schema if older (a newer one is refused:
     SchemaVersionError). Safe while the daemon runs: transactions wait on its lock (busy timeout), and the
     WAL checkpoint is left to the daemon. Raises StateMissing when there is no database."""
     config = load_config(config_path)
-    path = db_path(config)
-    if not path.is_file():
-        raise StateMissing(f"no state database at {path}", path=config_path, key="state.folder",
-                           hint="`lotwarden run` with this config creates it when it starts")
+    path = existing_db(config, config_path)
     try:
         db = Database.open(config.state.folder)
     except DatabaseError as exc:

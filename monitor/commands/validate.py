@@ -4,6 +4,10 @@ from __future__ import annotations
 
 import argparse
 from pathlib import Path
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from monitor.rulebook import DriftRule
 
 DEFAULT_CONFIG = "config/lotwarden.toml"
 
@@ -30,7 +34,9 @@ def run(args: argparse.Namespace) -> int:
     print(f"  rules: {len(rules)} in {config.rules_dir}")
     for r in rules:
         print(f"    {r.name} @ {r.version}: products {', '.join(r.products)}; target {r.target:g} {r.unit}, "
-              f"{r.alternative}, alpha {r.alpha:g}, min n {r.min_n}, idle {r.idle_minutes:g} min")
+              f"{r.alternative}, alpha {r.alpha:g}, min n {r.min_n}, idle {r.idle_minutes:g} min"
+              + (f"; release on equivalence ±{r.margin:g} {r.unit}" if r.release == "equivalence" and r.margin else "")
+              + (_drift_text(r.drift) if r.drift is not None else ""))
     names = [p.name for p in config.profiles]
     print(f"  profiles: {len(config.profiles)}" + (f" ({', '.join(names)})" if names else ""))
     channels = config.alerts.channels
@@ -49,3 +55,8 @@ def run(args: argparse.Namespace) -> int:
     if not rules:
         print("  warning: no rule files — every closed lot will raise a review alert")
     return 0
+
+
+def _drift_text(d: DriftRule) -> str:
+    how = f"k {d.k:g}, h {d.h:g}" if d.method == "cusum" else f"lambda {d.lam:g}, L {d.L:g}"
+    return f"; drift {d.method} ({how}{', per head too' if d.heads else ''})"

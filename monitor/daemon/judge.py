@@ -18,7 +18,7 @@ import numpy as np
 
 from monitor.alerts import kinds
 from monitor.alerts.alert import Alert
-from monitor.daemon import rejudge
+from monitor.daemon import drifting, rejudge
 from monitor.lot import LotData, LotKey, LotSummary, Verdict, excluded_counts, no_rule_reason, unjudged
 from monitor.rulebook import Rule
 from monitor.state import audit, outbox, verdicts
@@ -262,7 +262,7 @@ def record_verdict(conn: Connection, verdict: Verdict, rule: Rule | None, lot: L
     rule_name = rule.name if rule else ""
     version = rule.version if rule else ""
     rule_hash = rule.content_hash if rule else ""
-    verdicts.insert(conn, verdicts.NewVerdict(
+    verdict_id = verdicts.insert(conn, verdicts.NewVerdict(
         at, key.line, key.product, key.lot, rule_name, version, rule_hash, verdict.verdict, verdict.n,
         payload["mean"], payload["target"], verdict.unit, json.dumps(payload, sort_keys=True, allow_nan=False),
         lot_id, summary_id, close_reason, lot_rows))
@@ -292,4 +292,5 @@ def record_verdict(conn: Connection, verdict: Verdict, rule: Rule | None, lot: L
                                     after_verdict_id=previous.verdict_id if again and previous else None)
         if outbox.enqueue(conn, alert, channels):
             new.append(alert)
+    new.extend(drifting.advance_charts(conn, verdict, rule, verdict_id=verdict_id, at=at, channels=channels))
     return new

@@ -147,6 +147,15 @@ def read_only(path: str | Path) -> Iterator[sqlite3.Connection]:
 # --- end of engine: SQLite ---------------------------------------------------------------------------------
 
 
+def where_equal(**columns: str | None) -> tuple[str, list[str]]:
+    """`` WHERE a = ? AND b = ?`` for the columns given a value (None: no condition), and its arguments;
+    ``("", [])`` when none is given. Column names come from the caller's code, never from data."""
+    given = [(c, v) for c, v in columns.items() if v is not None]
+    if not given:
+        return "", []
+    return " WHERE " + " AND ".join(f"{c} = ?" for c, _ in given), [v for _, v in given]
+
+
 def inserted_id(cur: sqlite3.Cursor) -> int:
     """The rowid of the row an INSERT on ``cur`` just wrote."""
     if cur.lastrowid is None:

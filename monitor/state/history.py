@@ -9,6 +9,7 @@ import sqlite3
 from typing import NamedTuple
 
 from monitor.state import audit
+from monitor.state.database import where_equal
 from monitor.state.verdicts import _COLUMNS as VERDICT_COLUMNS
 from monitor.state.verdicts import VerdictRow
 
@@ -28,12 +29,7 @@ def latest_verdicts(conn: sqlite3.Connection, *, line: str | None = None, produc
                     ) -> list[VerdictRow]:
     """Each lot's latest verdict (highest id per line, product, lot), optionally of one line / product, in
     the order decided."""
-    where, args = [], []
-    for column, value in (("line", line), ("product", product)):
-        if value is not None:
-            where.append(f"{column} = ?")
-            args.append(value)
-    cond = (" WHERE " + " AND ".join(where)) if where else ""
+    cond, args = where_equal(line=line, product=product)
     sql = (f"SELECT id, {VERDICT_COLUMNS} FROM verdicts WHERE id IN (SELECT max(id) FROM verdicts{cond}"
            " GROUP BY line, product, lot) ORDER BY id")
     return [VerdictRow(*r) for r in conn.execute(sql, args)]

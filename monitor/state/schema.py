@@ -16,6 +16,8 @@ Versions:
      the server, so a message cut short by a crash is repeated as it was, under the same Message-ID.
   5  dispositions (what people decided about a held lot; append-only) and rule_texts (every rule version's
      full text, kept when first seen), for the lot record.
+  6  drift_tracks (each line/product/head's drift chart since its last restart), drift_lots (which lots
+     each chart has taken, so a lot judged again adds nothing twice) and drift_signals (every drift signal).
 
 The DDL of each migration is frozen as it was at its version: a later change is a new migration, never an
 edit of an old one.
@@ -31,7 +33,7 @@ from pathlib import Path
 from monitor.errors import LotwardenError
 from monitor.state.database import get_meta, set_meta, table_columns, table_names
 
-CURRENT_VERSION = 5
+CURRENT_VERSION = 6
 VERSION_KEY = "schema_version"
 
 # Version 2's tables, as a database of version 2 has them (a version-1 database lacks some; each is
@@ -258,6 +260,45 @@ CREATE INDEX IF NOT EXISTS rule_texts_name ON rule_texts(rule, first_seen_at);
 """
 
 
+# Version 6: drift across lots. A track row is replaced as lots close; lots and signals are only added.
+TABLES_V6 = """
+CREATE TABLE IF NOT EXISTS drift_tracks (
+    line        TEXT NOT NULL,
+    product     TEXT NOT NULL,
+    head        TEXT NOT NULL,          -- '' = the series of whole lots, else a filler head
+    track_json  TEXT NOT NULL,          -- monitor.drift.Track.to_json()
+    updated_at  TEXT NOT NULL,
+    PRIMARY KEY (line, product, head)
+);
+CREATE TABLE IF NOT EXISTS drift_lots (
+    line        TEXT NOT NULL,
+    product     TEXT NOT NULL,
+    head        TEXT NOT NULL,
+    lot         TEXT NOT NULL,
+    verdict_id  INTEGER NOT NULL,       -- the verdict whose statistic the chart took
+    z           REAL NOT NULL,
+    at          TEXT NOT NULL,
+    PRIMARY KEY (line, product, head, lot)
+);
+CREATE TABLE IF NOT EXISTS drift_signals (
+    id          INTEGER PRIMARY KEY,
+    at          TEXT NOT NULL,          -- ISO 8601 UTC
+    line        TEXT NOT NULL,
+    product     TEXT NOT NULL,
+    head        TEXT NOT NULL,
+    lot         TEXT NOT NULL,          -- the lot whose statistic crossed the limit
+    method      TEXT NOT NULL,
+    direction   TEXT NOT NULL CHECK (direction IN ('up', 'down')),
+    statistic   REAL NOT NULL,
+    limit_value REAL NOT NULL,
+    rule        TEXT NOT NULL,
+    rule_version TEXT NOT NULL,
+    data_json   TEXT NOT NULL           -- monitor.drift.DriftSignal.to_json()
+);
+CREATE INDEX IF NOT EXISTS drift_signals_at ON drift_signals(at);
+"""
+
+
 class SchemaVersionError(LotwardenError):
     """The state database's schema version is one this code cannot use (newer than it, or not a number)."""
 
@@ -305,6 +346,10 @@ def _to_v5(conn: sqlite3.Connection) -> None:
     _run_script(conn, TABLES_V5)
 
 
+def _to_v6(conn: sqlite3.Connection) -> None:
+    _run_script(conn, TABLES_V6)
+
+
 # Version 1 has no step: a new database (nothing in it) is treated as "before version 2" and built by the
 # steps from 2 on, which create every table they need if missing.
 MIGRATIONS: tuple[Migration, ...] = (
@@ -312,6 +357,7 @@ MIGRATIONS: tuple[Migration, ...] = (
     Migration(3, "create the senders' tables (e-mail bookkeeping, digest_runs)", _to_v3),
     Migration(4, "create email_batches (messages recorded before they are sent)", _to_v4),
     Migration(5, "create dispositions and rule_texts (the lot record)", _to_v5),
+    Migration(6, "create drift_tracks, drift_lots and drift_signals (drift across lots)", _to_v6),
 )
 assert [m.version for m in MIGRATIONS] == list(range(2, CURRENT_VERSION + 1))
 

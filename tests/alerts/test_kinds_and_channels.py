@@ -43,6 +43,8 @@ def sample_alerts() -> dict[str, object]:
                                          by="I. Marsh", note="re-weighed", at=at, verdict={"verdict": "hold"}),
         "reminder": kinds.reminder(line="L2", product="OAT-500", lot="A1", verdict_id=4, number=1,
                                    verdict={"verdict": "hold"}, open_minutes=240.0, at=at),
+        "drift": kinds.drift(line="L2", product="OAT-500", lot="A1", signal_id=1,
+                             signal={"method": "cusum", "head": None}, at=at),
         "rule-changed": kinds.rule_changed(rule="oat-500", file="rules/oat.toml", old_version="a", new_version="b",
                                            changes=[{"key": "alpha", "old": 0.05, "new": 0.01}], at=at),
         "daemon-started": kinds.daemon_started(started_at=at, config="c.toml", rules=["oat-500"]),

@@ -23,10 +23,10 @@ from monitor.state.schema import CURRENT_VERSION, SchemaVersionError
 FIXTURES = Path(__file__).resolve().parent / "fixtures"
 V2_DB = FIXTURES / "lotwarden-v2.db"
 
-# Every table of the current schema (version 5).
+# Every table of the current schema (version 6).
 TABLES = {"meta", "files", "lots", "lot_values", "lot_summaries", "verdicts", "audit", "alerts", "deliveries",
           "email_messages", "email_recipient_sends", "email_lot_notices", "digest_runs", "email_batches",
-          "dispositions", "rule_texts"}
+          "dispositions", "rule_texts", "drift_tracks", "drift_lots", "drift_signals"}
 # Rows per table in the fixture, as make_v2.py wrote them: two files (a values export, a summary export),
 # lots A1 (9 rows, one blank) and A2 (1 row), one summary record, two verdicts (A1 hold, S2 pass), four
 # audit records (a verdict and a file-taken per file), A1's hold alert with its one log delivery.
@@ -117,7 +117,7 @@ def test_a_version_2_database_upgrades_keeping_every_row(v2_folder: Path) -> Non
     assert scipy.stats.ttest_1samp(usable, 500.0).pvalue < 0.05 and hold.verdict == "hold"
     assert (passed.lot, passed.verdict, passed.summary_id, passed.lot_rows) == ("S2", "pass", summary.id, None)
     assert [r.file_id for r in taken] == [1, 2]
-    assert _version(v2_folder / DB_NAME) == str(CURRENT_VERSION) == "5"
+    assert _version(v2_folder / DB_NAME) == str(CURRENT_VERSION) == "6"
 
 
 def test_an_upgraded_database_is_used_as_before(v2_folder: Path, tmp_path: Path) -> None:
@@ -221,7 +221,7 @@ def test_a_version_1_database_upgrades_keeping_every_row(tmp_path: Path) -> None
     assert (summary.lot, summary.n, summary.problem) == ("S-OLD", 12, "")
     assert (verdict.verdict, verdict.lot_rows, verdict.payload) == ("pass", None, '{"excluded": 1}')
     assert latest is not None and latest.id == verdict.id
-    assert _version(db) == str(CURRENT_VERSION) == "5"
+    assert _version(db) == str(CURRENT_VERSION) == "6"
     with Database.open(tmp_path / "state") as again:
         assert _counts(again.conn, {"lot_values", "verdicts"}) == {"lot_values": 5, "verdicts": 1}
     assert _version(db) == str(CURRENT_VERSION)
@@ -269,7 +269,8 @@ def test_a_version_3_database_upgrades_keeping_every_row(tmp_path: Path) -> None
     old_tables = _tables(before)
     dump = {t: sorted(before.execute(f"SELECT * FROM {t}").fetchall(), key=repr) for t in old_tables - {"meta"}}
     before.close()
-    assert old_tables == TABLES - {"email_batches", "dispositions", "rule_texts"}
+    assert old_tables == TABLES - {"email_batches", "dispositions", "rule_texts", "drift_tracks", "drift_lots",
+                                  "drift_signals"}
     with Database.open(tmp_path / "state") as store:
         c = store.conn
         assert _tables(c) == TABLES
