@@ -4,15 +4,20 @@ Run by hand (``python bench/bench_replay.py [LOTS]``). It builds a state databas
 the invented Brackenfield Foods plant, product OAT-500) with a bulk insert, stores each lot's verdict, then
 times in the same process (a) the replay path: the batch reader, ``evaluate_many`` per rule and the drift
 charts, and (b) the lot-by-lot path: ``load_lot_values`` (three queries per lot) and ``evaluate`` per lot.
-It checks that both give the same verdicts and p-values, and prints both timings and their ratio.
+It checks that both give the same verdicts and p-values, and prints both timings and their ratio. End to end,
+it then times (c) the command a user runs, ``lotwarden replay --format json``, against (d) the script a user
+would write for the same question (sqlite3 read, scipy ``ttest_1samp`` + ``shapiro`` per lot, a CUSUM loop,
+JSON out), both as commands.
 """
 
 from __future__ import annotations
 
 import json
 import math
+import subprocess
 import sys
 import tempfile
+import textwrap
 import time
 import tomllib
 from datetime import UTC, datetime
@@ -89,6 +94,49 @@ def lot_by_lot(db: Path, rule: Rule) -> list[tuple[str, float | None]]:
     return out
 
 
+USER_SCRIPT = textwrap.dedent("""\
+    import json, sqlite3, sys
+    import numpy as np
+    from scipy import stats
+    conn = sqlite3.connect(f"file:{sys.argv[1]}?mode=ro", uri=True)
+    rows = conn.execute("SELECT lot, value FROM lot_values ORDER BY lot_id, seq").fetchall()
+    lots, values = {}, {}
+    for lot, v in rows:
+        values.setdefault(lot, []).append(v)
+    out, hi, lo, signals = [], 0.0, 0.0, 0
+    for lot, vals in values.items():
+        x = np.array(vals, dtype=float)
+        t = stats.ttest_1samp(x, 502.0)
+        sw = stats.shapiro(x)
+        verdict = "review" if sw.pvalue < 0.05 else ("hold" if t.pvalue < 0.05 else "pass")
+        if verdict != "review":
+            hi, lo = max(0.0, hi + t.statistic - 0.5), max(0.0, lo - t.statistic - 0.5)
+            if hi > 5.0 or lo > 5.0:
+                signals, hi, lo = signals + 1, 0.0, 0.0
+        out.append({"lot": lot, "now": verdict, "p_value": float(t.pvalue)})
+    print(json.dumps({"lots": out, "drift_signals": signals}))
+    """)
+
+
+def end_to_end(folder: Path) -> tuple[float, float]:
+    """(c) ``lotwarden replay --format json`` and (d) the user's script, each as a command; seconds each."""
+    (folder / "rules").mkdir()
+    (folder / "rules" / "oat-500.toml").write_text(RULE, encoding="utf-8")
+    (folder / "lotwarden.toml").write_text('rules_dir = "rules"\n[watch]\nfolder = "drop"\n[state]\nfolder = "."\n',
+                                           encoding="utf-8")
+    (folder / "user.py").write_text(USER_SCRIPT, encoding="utf-8")
+    t0 = time.perf_counter()
+    ours = subprocess.run([sys.executable, "-m", "monitor", "replay", "--config", str(folder / "lotwarden.toml"),
+                           "--rules", str(folder / "rules"), "--format", "json"], capture_output=True, check=True)
+    t_ours = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    theirs = subprocess.run([sys.executable, str(folder / "user.py"), str(folder / DB_NAME)], capture_output=True,
+                            check=True)
+    t_theirs = time.perf_counter() - t0
+    assert len(json.loads(ours.stdout)["lots"]) == len(json.loads(theirs.stdout)["lots"])
+    return t_ours, t_theirs
+
+
 def main() -> int:
     lots = int(sys.argv[1]) if len(sys.argv) > 1 else LOTS
     rule = Rule.from_toml(tomllib.loads(RULE), source="bench")
@@ -103,6 +151,7 @@ def main() -> int:
         t0 = time.perf_counter()
         ref = lot_by_lot(db, rule)
         t_loop = time.perf_counter() - t0
+        t_cmd, t_user = end_to_end(folder)
     assert len(result.rows) == len(ref) == lots
     worst = 0.0
     for row, (verdict, p) in zip(result.rows, ref, strict=True):
@@ -117,6 +166,8 @@ def main() -> int:
     print(f"  of which the batch read {t_read:.2f} s, evaluate_many and the drift charts {t_replay - t_read:.2f} s")
     print(f"lot by lot (load_lot_values + evaluate):      {t_loop:.2f} s")
     print(f"ratio: {t_loop / t_replay:.1f}x; worst relative p-value difference {worst:.1e}")
+    print(f"end to end: `lotwarden replay --format json` {t_cmd:.2f} s vs the user's script (sqlite3 + scipy "
+          f"ttest_1samp + shapiro per lot + CUSUM) {t_user:.2f} s: {t_cmd / t_user:.2f}x")
     return 0
 
 

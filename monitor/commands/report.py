@@ -17,6 +17,8 @@ from monitor.record import entries, select
 from monitor.report.fromstate import build_report
 from monitor.report.render import render_report
 from monitor.state import dispositions, history, rule_texts
+from monitor.state import drift as drift_store
+from monitor.state.database import utc_iso
 
 
 class OutError(LotwardenError):
@@ -75,11 +77,14 @@ def run(args: argparse.Namespace) -> int:
             disps = dispositions.for_verdicts(conn, [r.id for r in rows])
             items = select(entries(rows, disps), period=period, line=args.line, product=args.product)
             texts = rule_texts.by_hashes(conn, {e.rule_hash for e in items})
+            signals = drift_store.signals(conn, since=utc_iso(period.start) if period.start else None,
+                                          until=utc_iso(period.end) if period.end else None, line=args.line,
+                                          product=args.product)
     assert period.start is not None and period.end is not None   # both flags are required
     config_path = Path(args.config).resolve()
     report = build_report(items, texts, plant=config_path.parent.name or config_path.stem,
                           config_name=config_path.name, zone=config.timezone, start=period.start,
-                          end=period.end, generated_at=datetime.now(UTC))
+                          end=period.end, generated_at=datetime.now(UTC), signals=signals)
     try:
         write_atomically(out, render_report(report))
     except OSError as exc:

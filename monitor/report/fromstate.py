@@ -9,7 +9,17 @@ from zoneinfo import ZoneInfo
 
 from monitor.period import parse_stored
 from monitor.record import LotEntry, _finite
-from monitor.report.model import DISPOSITION_ACTIONS, Disposition, HeadOffset, LotRow, ProductSection, Report, RuleText
+from monitor.report.model import (
+    DISPOSITION_ACTIONS,
+    Disposition,
+    DriftMark,
+    HeadOffset,
+    LotRow,
+    ProductSection,
+    Report,
+    RuleText,
+)
+from monitor.state.drift import SignalRow
 from monitor.state.rule_texts import RuleText as StoredRuleText
 
 NOT_STORED = "text not stored (the daemon that judged these lots did not keep this rule version's text)"
@@ -56,10 +66,21 @@ def lot_row(e: LotEntry, zone: ZoneInfo) -> LotRow:
 
 
 def build_report(items: Sequence[LotEntry], texts: Mapping[str, StoredRuleText], *, plant: str,
-                 config_name: str, zone: str, start: datetime, end: datetime, generated_at: datetime) -> Report:
+                 config_name: str, zone: str, start: datetime, end: datetime, generated_at: datetime,
+                 signals: Sequence[SignalRow] = ()) -> Report:
     """The report of ``items`` (one section per line and product, in order of first appearance) with the rule
-    versions in force, ``texts`` by rule hash (a version not stored shows NOT_STORED); times in ``zone``."""
+    versions in force, ``texts`` by rule hash (a version not stored shows NOT_STORED), and the period's drift
+    ``signals`` under their line and product; times in ``zone``."""
     tz = ZoneInfo(zone)
+    marks: dict[tuple[str, str], list[DriftMark]] = {}
+    for sig in signals:
+        try:
+            at = parse_stored(sig.at)
+        except ValueError:
+            continue
+        marks.setdefault((sig.line, sig.product), []).append(DriftMark(
+            at=at.astimezone(tz), lot=sig.lot, head=sig.head or None, method=sig.method, direction=sig.direction,
+            statistic=sig.statistic, limit=sig.limit, lots=len(sig.data.get("lots") or ())))
     groups: dict[tuple[str, str], list[LotEntry]] = {}
     for e in items:
         groups.setdefault((e.line, e.product), []).append(e)
@@ -73,7 +94,8 @@ def build_report(items: Sequence[LotEntry], texts: Mapping[str, StoredRuleText],
             rules[e.rule_hash] = RuleText(rule=e.rule, version=e.rule_version,
                                           text=stored.text if stored is not None and stored.text else NOT_STORED)
         sections.append(ProductSection(line=line, product=product, unit=group[0].unit,
-                                       lots=tuple(lot_row(e, tz) for e in group), rules=tuple(rules.values())))
+                                       lots=tuple(lot_row(e, tz) for e in group), rules=tuple(rules.values()),
+                                       drift=tuple(marks.get((line, product), ()))))
     return Report(plant=plant, config_name=config_name, period_start=start.astimezone(tz),
                   period_end=end.astimezone(tz), generated_at=generated_at.astimezone(tz),
                   sections=tuple(sections), zone=zone)

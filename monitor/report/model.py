@@ -87,6 +87,23 @@ class RuleText:
 
 
 @dataclass(frozen=True)
+class DriftMark:
+    """A drift signal of the section's line and product in the period (whole lots, or one head)."""
+
+    at: datetime
+    lot: str
+    head: str | None
+    method: str
+    direction: str
+    statistic: float
+    limit: float
+    lots: int
+
+    def __post_init__(self) -> None:
+        _aware(self.at, "DriftMark.at")
+
+
+@dataclass(frozen=True)
 class ProductSection:
     """One line and product: its lots (kept in time order of decision) and the rule versions in force."""
 
@@ -95,6 +112,7 @@ class ProductSection:
     unit: str
     lots: tuple[LotRow, ...]
     rules: tuple[RuleText, ...] = ()
+    drift: tuple[DriftMark, ...] = ()
 
     def __post_init__(self) -> None:
         ordered = tuple(sorted(self.lots, key=lambda r: r.decided_at))

@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import json
 import os
-from datetime import datetime, timedelta
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from statistics import NormalDist
 
@@ -135,6 +135,27 @@ def test_cusum_across_lots_survives_a_restart_and_restarts_with_a_new_rule_versi
     audit = rows(db, "SELECT lot, detail FROM audit WHERE event = 'drift' ORDER BY id")
     assert sorted((json.loads(d)["head"] or "", lot) for lot, d in audit) == sorted((s, lot) for s, lot, _ in want)
     _the_digest_lists_the_signals(tmp_path, db, want)
+    _the_report_lists_the_signals(tmp_path, cfg, want)
+
+
+def _the_report_lists_the_signals(root: Path, cfg: Path, want: set[tuple[str, str, str]]) -> None:
+    """`lotwarden report` over this state has one drift row per signal, each naming its series and lot."""
+    import re
+    import subprocess
+    import sys
+
+    today = datetime.now(UTC).date()
+    out = root / "report.html"
+    p = subprocess.run([sys.executable, "-m", "monitor", "report", "--config", str(cfg), "--since",
+                        str(today - timedelta(days=1)), "--until", str(today + timedelta(days=1)), "--out", str(out)],
+                       capture_output=True, text=True, timeout=120)
+    assert p.returncode == 0, p.stderr
+    page = out.read_text(encoding="utf-8")
+    found = set()
+    for row in re.findall(r'<tr class="drift (up|down)">(.*?)</tr>', page, re.S):
+        cells = [re.sub(r"<[^>]+>", "", c).strip() for c in re.findall(r"<td>(.*?)</td>", row[1], re.S)]
+        found.add(("" if cells[1] == "whole lots" else cells[1].removeprefix("head "), cells[4], row[0]))
+    assert found == want
 
 
 def _the_digest_lists_the_signals(root: Path, db: Path, want: set[tuple[str, str, str]]) -> None:

@@ -130,3 +130,21 @@ def test_lot_row_is_frozen() -> None:
     row: LotRow = make_report().sections[0].lots[0]
     with pytest.raises(AttributeError):
         row.lot = "x"  # type: ignore[misc]
+
+
+def test_drift_signals_of_a_section_are_listed_and_escaped() -> None:
+    """A section's drift signals get their own table (series, method, direction, lot, statistic against limit,
+    lots); a section without signals has none; a hostile lot code is escaped."""
+    from monitor.report.model import DriftMark
+
+    report = make_report()
+    oats = report.sections[0]
+    marks = (DriftMark(at=START, lot=EVIL, head="H3", method="cusum", direction="up", statistic=5.25, limit=5.0,
+                       lots=7),)
+    html = render_report(replace(report, sections=(replace(oats, drift=marks), *report.sections[1:])))
+    assert html.count("<h3>Drift across lots</h3>") == 1
+    row = re.search(r'<tr class="drift up">(.*?)</tr>', html, re.S)
+    assert row is not None
+    cells = [re.sub(r"<[^>]+>", "", c).strip() for c in re.findall(r"<td>(.*?)</td>", row.group(1), re.S)]
+    assert cells[1:] == ["head H3", "cusum", "up", "&lt;script&gt;alert(1)&lt;/script&gt;", "5.25", "5.00", "7"]
+    assert EVIL not in html
