@@ -218,6 +218,8 @@ CONFIG = Section("config", "Daemon config (`config/lotwarden.toml`), top level",
     Key("timezone", "string", Derived("<alerts.digest.timezone>, else UTC"), _zone,
         'IANA time zone of the plant, e.g. "Europe/Berlin": a date given to `lots`, `report` (--since / '
         "--until) means that whole day there; times are shown there"),
+    Key("plant", "string", Derived("<the config file's folder name>"), Text(solid=True, plain=True, strip=True),
+        'the plant\'s name as people know it (e.g. "Brackenfield Foods, hall 2"): the title of `report` pages'),
 ))
 WATCH = Section("watch", "`[watch]`", (
     Key("folder", "string", REQUIRED, None, "drop folder the checkweigher writes its exports into (required)",

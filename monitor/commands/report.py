@@ -82,7 +82,7 @@ def run(args: argparse.Namespace) -> int:
                                           product=args.product)
     assert period.start is not None and period.end is not None   # both flags are required
     config_path = Path(args.config).resolve()
-    report = build_report(items, texts, plant=config_path.parent.name or config_path.stem,
+    report = build_report(items, texts, plant=config.plant,
                           config_name=config_path.name, zone=config.timezone, start=period.start,
                           end=period.end, generated_at=datetime.now(UTC), signals=signals)
     try:

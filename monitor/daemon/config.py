@@ -92,6 +92,7 @@ class Config:
     alerts: AlertSettings
     profiles: tuple[FeedProfile, ...] = ()
     timezone: str = "UTC"
+    plant: str = ""
 
     @property
     def version(self) -> str:
@@ -123,7 +124,8 @@ def parse_config(table: Mapping[str, Any], *, source: Path, content_hash: str = 
     profiles = parse_profiles(top["profiles"], source=src)
     zone = top["timezone"] or (alerts.digest.timezone if alerts.digest is not None else "UTC")
     return Config(source=Path(source), content_hash=content_hash, rules_dir=top["rules_dir"], watch=watch,
-                  state=state, alerts=alerts, profiles=profiles, timezone=zone)
+                  state=state, alerts=alerts, profiles=profiles, timezone=zone,
+                  plant=top["plant"] or base.name or Path(source).stem)
 
 
 def parse_profiles(table: Mapping[str, Any], *, source: str) -> tuple[FeedProfile, ...]:

@@ -136,6 +136,21 @@ def test_no_lots_in_the_period_is_still_a_page(record_run: RecordRun, tmp_path: 
     assert "0 lots" in done.stdout
 
 
+def test_the_title_names_the_plant_key_else_the_config_folder(record_run: RecordRun, tmp_path: Path) -> None:
+    """Top-level `plant` names the page; without it the config file's folder does (a data value, escaped)."""
+    out = tmp_path / "named.html"
+    done = lotwarden("report", "--config", record_run.config, "--since", "2020-01-01", "--until", "2020-01-02",
+                     "--out", out)
+    assert done.returncode == 0, done.stderr
+    assert f"<h1>Lot record · {record_run.config.parent.name}</h1>" in out.read_text(encoding="utf-8")
+    named = record_run.root / "named.toml"
+    named.write_text('plant = "Brackenfield <Foods> hall 2"\n' + record_run.config.read_text(encoding="utf-8"),
+                     encoding="utf-8")
+    done = lotwarden("report", "--config", named, "--since", "2020-01-01", "--until", "2020-01-02", "--out", out)
+    assert done.returncode == 0, done.stderr
+    assert "<h1>Lot record · Brackenfield &lt;Foods&gt; hall 2</h1>" in out.read_text(encoding="utf-8")
+
+
 @pytest.mark.parametrize("args, needle", [
     (["--since", "2026-11-01", "--until", "2026-12-31", "--out", "/no/such/folder/r.html"], "--out"),
     (["--since", "2026-13-01", "--until", "2026-12-31", "--out", "{tmp}/r.html"], "--since"),
