@@ -19,7 +19,7 @@ import numpy as np
 from monitor import drift
 from monitor.daemon import judge
 from monitor.engine import evaluate, evaluate_many
-from monitor.lot import LotData, LotKey, Verdict, excluded_counts
+from monitor.lot import LotData, LotKey, Verdict
 from monitor.rulebook import Rule
 from monitor.state.replaying import StoredLot, StoredSummary
 
@@ -85,6 +85,12 @@ class SignalSeen:
     limit: float
     rule: str
     rule_version: str
+
+    @classmethod
+    def from_signal(cls, s: drift.DriftSignal) -> SignalSeen:
+        """A signal of the replay's own charts (its lot: the last of the lots that built it)."""
+        return cls(s.line, s.product, s.head, s.lots[-1], s.method, s.direction, s.statistic, s.limit, s.rule,
+                   s.rule_version)
 
     def to_json(self) -> dict[str, Any]:
         return {"line": self.line, "product": self.product, "head": self.head, "lot": self.lot,
@@ -175,16 +181,8 @@ def judge_all(items: Sequence[ToJudge]) -> list[Verdict]:
         except Exception:  # one bad lot must not cost the batch: judge lot by lot, an engine failure -> review
             got = [judge.judge(lot, rule, None, evaluate) for lot in lots]
         for i, v in zip(idx, got, strict=True):
-            out[i] = _with_lot_facts(v, items[i].data)
+            out[i] = judge.with_lot_facts(v, items[i].data)
     return [v for v in out if v is not None]
-
-
-def _with_lot_facts(v: Verdict, lot: LotData) -> Verdict:
-    """``judge.with_lot_facts``, without its copy when the verdict says these facts already (the usual case)."""
-    if v.unit_assumed == lot.unit_assumed and v.runs == lot.runs \
-            and dict(v.excluded_by) == excluded_counts(lot.excluded_by, v.excluded):
-        return v
-    return judge.with_lot_facts(v, lot)
 
 
 def drift_now(verdicts: Sequence[Verdict], rules: Sequence[Rule | None]) -> list[SignalSeen]:
@@ -202,8 +200,7 @@ def drift_now(verdicts: Sequence[Verdict], rules: Sequence[Rule | None]) -> list
                                           lot=k.lot, z=z, rule=rule)
             tracks[series] = track
             if signal is not None:
-                out.append(SignalSeen(k.line, k.product, signal.head, k.lot, signal.method, signal.direction,
-                                      signal.statistic, signal.limit, signal.rule, signal.rule_version))
+                out.append(SignalSeen.from_signal(signal))
     return out
 
 

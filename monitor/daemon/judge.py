@@ -219,9 +219,13 @@ def judge(lot: LotData, rule: Rule | None, problem: str | None, evaluate: Evalua
 
 
 def with_lot_facts(verdict: Verdict, lot: LotData) -> Verdict:
-    """``verdict`` with the lot's ``unit_assumed`` and its exclusion counts (all four reasons)."""
-    return replace(verdict, unit_assumed=lot.unit_assumed, runs=lot.runs,
-                   excluded_by=excluded_counts(lot.excluded_by, verdict.excluded))
+    """``verdict`` with the lot's ``unit_assumed`` and its exclusion counts (all four reasons); the verdict
+    itself when it says these already (the usual case: no copy, which a batch of lots cannot afford)."""
+    excluded_by = excluded_counts(lot.excluded_by, verdict.excluded)
+    if verdict.unit_assumed == lot.unit_assumed and verdict.runs == lot.runs \
+            and dict(verdict.excluded_by) == excluded_by:
+        return verdict
+    return replace(verdict, unit_assumed=lot.unit_assumed, runs=lot.runs, excluded_by=excluded_by)
 
 
 def _judge(lot: LotData, rule: Rule | None, problem: str | None, evaluate: Evaluator) -> Verdict:

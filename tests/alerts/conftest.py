@@ -202,3 +202,29 @@ def smtp_factory() -> Iterable[Callable[..., SmtpServer]]:
 @pytest.fixture
 def free_port_factory() -> Callable[[], int]:
     return free_port
+
+
+@pytest.fixture
+def deliver_one(db_path: Path, tmp_path: Path, put: Callable[..., bool],
+                smtp_factory: Callable[..., SmtpServer]) -> Callable[..., Any]:
+    """Put one alert in the outbox for e-mail and drain it through the real dispatcher to a fresh aiosmtpd
+    server on loopback (no grouping wait); the one received message."""
+    def _deliver(alert: Alert, *, now: float, seed: int = 5) -> Any:
+        from monitor.alerts.dispatch import Dispatcher
+        from monitor.alerts.settings import AlertSettings, EmailSettings, LogSettings
+
+        srv = smtp_factory()
+        put(alert, ["email"])
+        s = AlertSettings(log=LogSettings(path=tmp_path / "alerts.jsonl"),
+                          email=EmailSettings(host="127.0.0.1", port=srv.port, security="none",
+                                              sender="lotwarden@brackenfield.example",
+                                              recipients=("qa@brackenfield.example",), timeout=10),
+                          group_window_seconds=0.0)
+        d = Dispatcher(db_path, s, seed=seed)
+        try:
+            assert d.drain(now=now) == 1
+        finally:
+            d.close()
+        assert len(srv.received) == 1
+        return srv.received[0]
+    return _deliver

@@ -7,7 +7,6 @@ from __future__ import annotations
 import io
 import math
 import struct
-from pathlib import Path
 from typing import Any
 
 import pytest
@@ -16,9 +15,7 @@ from matplotlib import image as mpimg
 from monitor.alerts import kinds
 from monitor.alerts.alert import Alert
 from monitor.alerts.compose import chart_for
-from monitor.alerts.dispatch import Dispatcher
 from monitor.alerts.drift_chart import render_drift_chart
-from monitor.alerts.settings import AlertSettings, EmailSettings, LogSettings
 from monitor.alerts.templates import TemplateSet, message_context
 from monitor.drift import DriftSignal, Track, advance
 from monitor.errors import TemplateError
@@ -76,24 +73,6 @@ def drift_alert(sig: DriftSignal, signal_id: int = 1) -> Alert:
                        signal=sig.to_json(), at=AT)
 
 
-def deliver(alert: Alert, db_path: Path, tmp_path: Path, put: Any, smtp_factory: Any) -> Any:
-    """Through the dispatcher's e-mail channel to a real aiosmtpd server; the one received message."""
-    srv = smtp_factory()
-    put(alert, ["email"])
-    s = AlertSettings(log=LogSettings(path=tmp_path / "alerts.jsonl"),
-                      email=EmailSettings(host="127.0.0.1", port=srv.port, security="none",
-                                          sender="lotwarden@brackenfield.example",
-                                          recipients=("qa@brackenfield.example",), timeout=10),
-                      group_window_seconds=0.0)
-    d = Dispatcher(db_path, s, seed=5)
-    try:
-        assert d.drain(now=NOW) == 1
-    finally:
-        d.close()
-    assert len(srv.received) == 1
-    return srv.received[0]
-
-
 def png_size(png: bytes) -> tuple[int, int]:
     """Width and height from the IHDR chunk, which follows the signature (PNG spec, section 11.2.2)."""
     assert png[:8] == PNG_SIGNATURE and png[12:16] == b"IHDR"
@@ -114,12 +93,12 @@ UP_Z = [0.4, -0.3, 0.9, 1.2, 0.7, 1.5, 0.8, 1.3, 1.1, 1.0]
 UP_LOTS = ["B2101", "B2102", "B2103", "B2104", HOSTILE_LOT, "B2106", "B2107", "B2108", "B2109", CRLF_LOT]
 
 
-def test_cusum_up_notice_through_a_real_smtp_server(db_path, tmp_path, put, smtp_factory) -> None:
+def test_cusum_up_notice_through_a_real_smtp_server(deliver_one) -> None:
     sig = signal_of(rule(CUSUM), UP_LOTS, UP_Z)
     ref = cusum_reference(UP_Z, k=0.5)
     s_plus = ref[-1][0]
     assert s_plus > 4.0 and all(hi <= 4.0 and lo <= 4.0 for hi, lo in ref[:-1])   # the recursion's own signal
-    got = deliver(drift_alert(sig), db_path, tmp_path, put, smtp_factory)
+    got = deliver_one(drift_alert(sig), now=NOW)
     m = got.message
 
     # subject: line, product, direction in words; the CR/LF lot never becomes a header
@@ -165,7 +144,7 @@ EWMA = {"method": "ewma", "lambda": 0.2, "L": 3.0, "heads": True}
 DOWN_Z = [-0.6, -1.1, -1.9, -1.4, -2.2, -1.7, -1.6]
 
 
-def test_ewma_down_for_one_head(db_path, tmp_path, put, smtp_factory) -> None:
+def test_ewma_down_for_one_head(deliver_one) -> None:
     ref = ewma_reference(DOWN_Z, lam=0.2, L=3.0)
     first = next(i for i, (e, lim) in enumerate(ref) if abs(e) > lim)      # where the recursion signals
     z = DOWN_Z[: first + 1]
@@ -173,7 +152,7 @@ def test_ewma_down_for_one_head(db_path, tmp_path, put, smtp_factory) -> None:
     sig = signal_of(rule(EWMA), lots, z, head="H3")
     e, lim = ref[first]
     assert e < -lim
-    got = deliver(drift_alert(sig), db_path, tmp_path, put, smtp_factory)
+    got = deliver_one(drift_alert(sig), now=NOW)
     m = got.message
     subject = str(m["Subject"])
     for needle in ("L2", "OAT-500", "head H3", "creeping down", "short-fill risk", "EWMA"):
@@ -213,13 +192,13 @@ def test_a_long_run_lists_the_last_20_lots_and_counts_all() -> None:
         assert "S+ = 6.000" in body
 
 
-def test_a_chart_that_cannot_be_drawn_does_not_stop_the_notice(db_path, tmp_path, put, smtp_factory) -> None:
+def test_a_chart_that_cannot_be_drawn_does_not_stop_the_notice(deliver_one) -> None:
     """Points without their chart values (a malformed payload): no PNG, the notice still goes out."""
     sig = signal_of(rule(CUSUM), [*UP_LOTS[:4], "B2105", *UP_LOTS[5:9], "B2110"], UP_Z).to_json()
     sig["points"] = [{"lot": p["lot"], "z": p["z"]} for p in sig["points"]]
     alert = kinds.drift(line="L2", product="OAT-500", lot="B2110", signal_id=9, signal=sig, at=AT)
     assert chart_for(alert) is None
-    m = deliver(alert, db_path, tmp_path, put, smtp_factory).message
+    m = deliver_one(alert, now=NOW).message
     assert not [p for p in m.walk() if p.get_content_type() == "image/png"]
     text = m.get_body(("plain",)).get_content().replace("\r\n", "\n")
     assert "CUSUM" in text and "B2110" in text and "Chart:" not in text and "competent authority" in text

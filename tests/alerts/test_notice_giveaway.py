@@ -11,8 +11,6 @@ import numpy as np
 
 from monitor.alerts import kinds
 from monitor.alerts.alert import Alert
-from monitor.alerts.dispatch import Dispatcher
-from monitor.alerts.settings import AlertSettings, EmailSettings, LogSettings
 from monitor.alerts.templates import CAUTION, TemplateSet, message_context
 from monitor.engine import evaluate
 from monitor.lot import LotData, LotKey
@@ -116,23 +114,10 @@ def test_a_lot_without_a_mean_has_no_giveaway_line() -> None:
     assert "Giveaway" not in r.text and "Giveaway" not in r.html
 
 
-def test_one_real_e_mail_carries_the_giveaway(db_path, tmp_path, put, smtp_factory) -> None:
+def test_one_real_e_mail_carries_the_giveaway(deliver_one) -> None:
     """Through the dispatcher to a real aiosmtpd server on loopback: plain and HTML parts carry the line."""
-    srv = smtp_factory()
     alert = verdict_alert(OAT, lot("L1", "OAT-500", "A7", OVER))
-    put(alert, ["email"])
-    s = AlertSettings(log=LogSettings(path=tmp_path / "alerts.jsonl"),
-                      email=EmailSettings(host="127.0.0.1", port=srv.port, security="none",
-                                          sender="lotwarden@brackenfield.example",
-                                          recipients=("qa@brackenfield.example",), timeout=10),
-                      group_window_seconds=0.0)
-    d = Dispatcher(db_path, s, seed=3)
-    try:
-        assert d.drain(now=1_796_165_000.0) == 1
-    finally:
-        d.close()
-    assert len(srv.received) == 1
-    m = srv.received[0].message
+    m = deliver_one(alert, now=1_796_165_000.0, seed=3).message
     want = line_of(OVER, "nominal quantity", 500.0, 0.0042, "EUR")
     assert f"Giveaway:   {want}" in m.get_body(("plain",)).get_content()
     assert f"<td>{want}</td>" in m.get_body(("html",)).get_content()
